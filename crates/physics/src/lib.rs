@@ -1,0 +1,10 @@
+//! tarn's physics: energy models, configuration-space explorers, quench and state
+//! fingerprints.
+//!
+//! Owns: the numbers. Every function takes slices and returns numbers; nothing here
+//! knows about tokio, sled, files, task directories or the worker protocol.
+//! Must not touch: the store, the engine, the file system, processes.
+
+pub mod energy;
+
+pub use energy::{EnergyError, EnergyModel};
