@@ -1,5 +1,21 @@
 //! tarn's estimators: reweighting, effective sample size, state free energies with
-//! bootstrap error bars, histogram profiles, MBAR, metadynamics reweighting.
+//! bootstrap error bars, histogram profiles, MBAR, metadynamics reweighting, and the
+//! pure decision functions that stop rules use.
 //!
 //! Owns: statistics over arrays of numbers. Must not touch: the store, the engine,
-//! files, processes.
+//! files, processes. All randomness comes from a generator passed in by the caller.
+
+pub mod bootstrap;
+pub mod error;
+pub mod logspace;
+pub mod states;
+
+pub use bootstrap::{BootstrapOptions, Interval, IntervalMethod, Uncertainty};
+pub use error::{Result, StatsError};
+pub use logspace::{
+    ess_fraction, importance_log_weights, kish_ess, log_partition_estimate, logsumexp,
+    normalised_log_weights, LogZEstimate,
+};
+pub use states::{
+    labels_from_signed, state_free_energies, StateFreeEnergies, StateFreeEnergy, StateLabel,
+};
