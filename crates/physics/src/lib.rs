@@ -6,5 +6,10 @@
 //! Must not touch: the store, the engine, the file system, processes.
 
 pub mod energy;
+pub mod error;
+pub mod models;
+pub mod simd;
 
-pub use energy::{EnergyError, EnergyModel};
+pub use energy::{check_batch, EnergyError, EnergyModel};
+pub use error::PhysicsError;
+pub use models::SystemSpec;
