@@ -7,7 +7,9 @@
 
 pub mod bootstrap;
 pub mod error;
+mod linalg;
 pub mod logspace;
+pub mod mbar;
 pub mod states;
 
 pub use bootstrap::{BootstrapOptions, Interval, IntervalMethod, Uncertainty};
@@ -16,6 +18,7 @@ pub use logspace::{
     ess_fraction, importance_log_weights, kish_ess, log_partition_estimate, logsumexp,
     normalised_log_weights, LogZEstimate,
 };
+pub use mbar::{Expectations, FreeEnergyDifferences, Mbar, MbarOptions};
 pub use states::{
     labels_from_signed, state_free_energies, StateFreeEnergies, StateFreeEnergy, StateLabel,
 };
