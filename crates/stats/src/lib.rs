@@ -10,6 +10,7 @@ pub mod error;
 mod linalg;
 pub mod logspace;
 pub mod mbar;
+pub mod profile;
 pub mod states;
 
 pub use bootstrap::{BootstrapOptions, Interval, IntervalMethod, Uncertainty};
@@ -19,6 +20,10 @@ pub use logspace::{
     normalised_log_weights, LogZEstimate,
 };
 pub use mbar::{Expectations, FreeEnergyDifferences, Mbar, MbarOptions};
+pub use profile::{
+    compare_profiles, free_energy_profile, reference_profile, Alignment, Bins, Profile,
+    ProfileComparison,
+};
 pub use states::{
     labels_from_signed, state_free_energies, StateFreeEnergies, StateFreeEnergy, StateLabel,
 };
