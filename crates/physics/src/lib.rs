@@ -13,3 +13,5 @@ pub mod simd;
 pub use energy::{check_batch, EnergyError, EnergyModel};
 pub use error::PhysicsError;
 pub use models::SystemSpec;
+pub mod fingerprint;
+pub mod quench;
