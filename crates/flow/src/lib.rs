@@ -3,3 +3,52 @@
 //!
 //! Owns: flow architecture, training, latent-space Metropolis, generation, weight files'
 //! byte format. Must not touch: the store, the engine, tokio, task directories.
+
+mod flow;
+mod frame;
+mod real;
+mod spec;
+mod tape;
+mod workspace;
+
+pub use flow::Flow;
+pub use real::{exp_f32, Real};
+pub use spec::{Activation, FlowSpec, FrameSpec};
+pub use workspace::{regularise_energy, KlStats, KlTerm, Threading, Workspace};
+
+use tarn_physics::EnergyError;
+
+/// Everything that can go wrong in the flow crate, with a message naming the cause.
+#[derive(Debug, thiserror::Error)]
+pub enum FlowError {
+    /// The architecture cannot make a flow.
+    #[error("invalid flow architecture: {0}")]
+    Spec(String),
+    /// An input slice has the wrong length.
+    #[error(
+        "shape mismatch in {what}: expected a multiple of or exactly {expected} values, got {got}"
+    )]
+    Shape {
+        /// Which argument.
+        what: &'static str,
+        /// The expected length (or row length).
+        expected: usize,
+        /// The length given.
+        got: usize,
+    },
+    /// Training or sampling parameters out of range.
+    #[error("invalid parameters: {0}")]
+    Params(String),
+    /// A weight file that cannot be read.
+    #[error("weight file: {0}")]
+    Format(String),
+    /// The energy model failed.
+    #[error("energy model: {0}")]
+    Energy(#[from] EnergyError),
+    /// The thread pool could not be built.
+    #[error("thread pool: {0}")]
+    Threads(String),
+    /// Training produced non-finite parameters or losses.
+    #[error("training diverged: {0}")]
+    Diverged(String),
+}

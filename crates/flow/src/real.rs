@@ -1,0 +1,332 @@
+//! The scalar types the flow is generic over (f32 for production, f64 for gradient
+//! checks), the single GEMM entry point, and the element-wise kernels of the hot loops.
+//!
+//! Element-wise kernels are written once, generically, and run inside a function
+//! compiled with AVX-512 or AVX2 enabled when the CPU has it (chosen at run time), so
+//! that LLVM vectorises them without the crate demanding `-C target-cpu=native`. The f32
+//! exponential is a branch-free polynomial (relative error about 2e-7) because libm's
+//! scalar call would dominate the small configurations; the f64 path keeps the exact
+//! libm functions so that finite-difference checks measure the derivation, not an
+//! approximation.
+
+use crate::spec::Activation;
+use std::fmt::Debug;
+use std::ops::{AddAssign, MulAssign, SubAssign};
+
+/// A floating-point type the flow can run in.
+pub trait Real:
+    num_traits::Float + Default + Debug + Send + Sync + AddAssign + SubAssign + MulAssign + 'static
+{
+    /// The safetensors dtype name of this type (`F32` or `F64`).
+    const DTYPE_NAME: &'static str;
+
+    /// Converts from f64 (rounding for f32).
+    fn of(v: f64) -> Self;
+
+    /// Converts to f64 exactly.
+    fn to64(self) -> f64;
+
+    /// The exponential used in hot loops: fast and vectorisable for f32, exact for f64.
+    fn fexp(self) -> Self;
+}
+
+impl Real for f32 {
+    const DTYPE_NAME: &'static str = "F32";
+    #[inline(always)]
+    fn of(v: f64) -> Self {
+        v as f32
+    }
+    #[inline(always)]
+    fn to64(self) -> f64 {
+        self as f64
+    }
+    #[inline(always)]
+    fn fexp(self) -> Self {
+        exp_f32(self)
+    }
+}
+
+impl Real for f64 {
+    const DTYPE_NAME: &'static str = "F64";
+    #[inline(always)]
+    fn of(v: f64) -> Self {
+        v
+    }
+    #[inline(always)]
+    fn to64(self) -> f64 {
+        self
+    }
+    #[inline(always)]
+    fn fexp(self) -> Self {
+        self.exp()
+    }
+}
+
+/// A branch-free single-precision exponential: range reduction by ln 2 (split into a
+/// high and a low part) and a degree-6 Taylor polynomial on |r| <= ln2/2, whose
+/// truncation error (r^7/7!) is about 1.2e-7 relative. Inputs are clamped to
+/// [-87, 88] so the exponent bits never overflow.
+#[inline(always)]
+pub fn exp_f32(x: f32) -> f32 {
+    const LOG2E: f32 = std::f32::consts::LOG2_E;
+    const LN2_HI: f32 = 0.693_145_75;
+    const LN2_LO: f32 = 1.428_606_8e-6;
+    const ROUND: f32 = 12_582_912.0; // 1.5 * 2^23: adding it rounds to an integer.
+    let x = x.clamp(-87.0, 88.0);
+    let n = (x * LOG2E + ROUND) - ROUND;
+    let r = x - n * LN2_HI - n * LN2_LO;
+    let p = 1.0
+        + r * (1.0
+            + r * (0.5
+                + r * (1.0 / 6.0 + r * (1.0 / 24.0 + r * (1.0 / 120.0 + r * (1.0 / 720.0))))));
+    let bits = ((n as i32 + 127) as u32) << 23;
+    p * f32::from_bits(bits)
+}
+
+/// Runs `f` inside a function compiled for the best vector extension the CPU has.
+/// The closure is inlined there, so generic loops in it are vectorised for that ISA.
+#[inline(always)]
+pub(crate) fn simd<R>(f: impl FnOnce() -> R) -> R {
+    #[cfg(target_arch = "x86_64")]
+    {
+        if std::is_x86_feature_detected!("avx512f") {
+            // SAFETY: the CPU supports AVX-512F, checked just above.
+            return unsafe { run_avx512(f) };
+        }
+        if std::is_x86_feature_detected!("avx2") && std::is_x86_feature_detected!("fma") {
+            // SAFETY: the CPU supports AVX2 and FMA, checked just above.
+            return unsafe { run_avx2(f) };
+        }
+    }
+    f()
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f,avx512vl,avx512dq,avx2,fma")]
+unsafe fn run_avx512<R>(f: impl FnOnce() -> R) -> R {
+    f()
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2,fma")]
+unsafe fn run_avx2<R>(f: impl FnOnce() -> R) -> R {
+    f()
+}
+
+/// `c = a * b` (or `c += a * b` when `accumulate`), on `threads` threads of the current
+/// rayon pool when `threads > 1`, all row-major with the given row
+/// strides; `a_t`/`b_t` read `a`/`b` transposed. Dimensions: op(a) is m x k, op(b) is
+/// k x n, c is m x n. Bounds are checked before the unsafe call; a violation is a bug
+/// in this crate, never reachable from user input, hence the panic.
+#[allow(clippy::too_many_arguments)]
+pub(crate) fn matmul<T: Real>(
+    m: usize,
+    n: usize,
+    k: usize,
+    a: &[T],
+    a_t: bool,
+    b: &[T],
+    b_t: bool,
+    c: &mut [T],
+    accumulate: bool,
+    threads: usize,
+) {
+    if m == 0 || n == 0 {
+        return;
+    }
+    if k == 0 {
+        if !accumulate {
+            c[..m * n].fill(T::zero());
+        }
+        return;
+    }
+    assert!(a.len() >= m * k && b.len() >= k * n && c.len() >= m * n);
+    // Row-major op(a): element (i, p) at i*rs + p*cs.
+    let (a_rs, a_cs) = if a_t {
+        (1, m as isize)
+    } else {
+        (k as isize, 1)
+    };
+    let (b_rs, b_cs) = if b_t {
+        (1, k as isize)
+    } else {
+        (n as isize, 1)
+    };
+    // SAFETY: the strides address only elements below m*k, k*n and m*n, and the
+    // lengths were asserted above; the slices do not alias (one is &mut).
+    unsafe {
+        gemm::gemm(
+            m,
+            n,
+            k,
+            c.as_mut_ptr(),
+            1,
+            n as isize,
+            accumulate,
+            a.as_ptr(),
+            a_cs,
+            a_rs,
+            b.as_ptr(),
+            b_cs,
+            b_rs,
+            T::one(),
+            T::one(),
+            false,
+            false,
+            false,
+            if threads > 1 {
+                gemm::Parallelism::Rayon(threads)
+            } else {
+                gemm::Parallelism::None
+            },
+        );
+    }
+}
+
+/// Adds `bias` to every row of `buf` (`rows` x `bias.len()`), then applies `act` in
+/// place, keeping in `aux` what the backward pass needs (the sigmoid for SiLU).
+pub(crate) fn bias_act_forward<T: Real>(
+    act: Option<Activation>,
+    rows: usize,
+    bias: &[T],
+    buf: &mut [T],
+    aux: &mut [T],
+) {
+    let cols = bias.len();
+    simd(|| {
+        for i in 0..rows {
+            let row = &mut buf[i * cols..(i + 1) * cols];
+            match act {
+                None => {
+                    for (v, &b) in row.iter_mut().zip(bias) {
+                        *v += b;
+                    }
+                }
+                Some(Activation::Silu) => {
+                    let arow = &mut aux[i * cols..(i + 1) * cols];
+                    for ((v, a), &b) in row.iter_mut().zip(arow.iter_mut()).zip(bias) {
+                        let p = *v + b;
+                        let sig = T::one() / (T::one() + (-p).fexp());
+                        *a = sig;
+                        *v = p * sig;
+                    }
+                }
+                Some(Activation::Tanh) => {
+                    for (v, &b) in row.iter_mut().zip(bias) {
+                        *v = tanh_fast(*v + b);
+                    }
+                }
+                Some(Activation::Relu) => {
+                    for (v, &b) in row.iter_mut().zip(bias) {
+                        let p = *v + b;
+                        *v = if p > T::zero() { p } else { T::zero() };
+                    }
+                }
+            }
+        }
+    })
+}
+
+/// Turns the gradient with respect to an activation's output into the gradient with
+/// respect to its input, in place: `grad *= act'(pre)`, from the stored output `post`
+/// (and sigmoid `aux` for SiLU: d/dp [p s(p)] = s + h (1 - s) with h = p s).
+pub(crate) fn act_backward<T: Real>(act: Activation, post: &[T], aux: &[T], grad: &mut [T]) {
+    simd(|| match act {
+        Activation::Silu => {
+            for ((g, &h), &s) in grad.iter_mut().zip(post).zip(aux) {
+                *g *= s + h * (T::one() - s);
+            }
+        }
+        Activation::Tanh => {
+            for (g, &h) in grad.iter_mut().zip(post) {
+                *g *= T::one() - h * h;
+            }
+        }
+        Activation::Relu => {
+            for (g, &h) in grad.iter_mut().zip(post) {
+                if h <= T::zero() {
+                    *g = T::zero();
+                }
+            }
+        }
+    })
+}
+
+/// Adds the column sums of `g` (`rows` x `acc.len()`) to `acc` (a bias gradient).
+pub(crate) fn add_col_sums<T: Real>(rows: usize, g: &[T], acc: &mut [T]) {
+    let cols = acc.len();
+    simd(|| {
+        for i in 0..rows {
+            for (a, &v) in acc.iter_mut().zip(&g[i * cols..(i + 1) * cols]) {
+                *a += v;
+            }
+        }
+    })
+}
+
+/// tanh through the fast exponential: 1 - 2 / (1 + e^{2x}). Its absolute error near
+/// zero (about 1e-7 in f32) is harmless here because forward and inverse passes use the
+/// same function, so invertibility is unaffected.
+#[inline(always)]
+pub(crate) fn tanh_fast<T: Real>(x: T) -> T {
+    let two = T::one() + T::one();
+    if T::DTYPE_NAME == "F64" {
+        x.tanh()
+    } else {
+        T::one() - two / (T::one() + (two * x).fexp())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn fast_exp_matches_libm() {
+        let mut worst = 0.0f64;
+        let mut x = -80.0f32;
+        while x < 80.0 {
+            let rel = ((exp_f32(x) as f64) - (x as f64).exp()).abs() / (x as f64).exp();
+            worst = worst.max(rel);
+            x += 0.0137;
+        }
+        assert!(worst < 5e-7, "worst relative error {worst}");
+    }
+
+    #[test]
+    fn matmul_transposes_agree_with_naive_product() {
+        let (m, n, k) = (5, 7, 3);
+        let a: Vec<f64> = (0..m * k).map(|i| (i as f64 * 0.37).sin()).collect();
+        let b: Vec<f64> = (0..k * n).map(|i| (i as f64 * 0.11).cos()).collect();
+        let mut want = vec![0.0; m * n];
+        for i in 0..m {
+            for j in 0..n {
+                for p in 0..k {
+                    want[i * n + j] += a[i * k + p] * b[p * n + j];
+                }
+            }
+        }
+        let mut c = vec![0.0; m * n];
+        matmul(m, n, k, &a, false, &b, false, &mut c, false, 1);
+        assert!(c.iter().zip(&want).all(|(x, y)| (x - y).abs() < 1e-12));
+        // Transposed storage of a (k x m) and b (n x k).
+        let mut at = vec![0.0; m * k];
+        for i in 0..m {
+            for p in 0..k {
+                at[p * m + i] = a[i * k + p];
+            }
+        }
+        let mut bt = vec![0.0; k * n];
+        for p in 0..k {
+            for j in 0..n {
+                bt[j * k + p] = b[p * n + j];
+            }
+        }
+        let mut c2 = vec![1.0; m * n];
+        matmul(m, n, k, &at, true, &bt, true, &mut c2, true, 1);
+        assert!(c2
+            .iter()
+            .zip(&want)
+            .all(|(x, y)| (x - 1.0 - y).abs() < 1e-12));
+    }
+}

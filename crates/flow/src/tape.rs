@@ -1,0 +1,497 @@
+//! One chunk's preallocated buffers and the passes over it: generation (z -> x),
+//! inversion (x -> z), and the hand-derived backward passes of both.
+//!
+//! Everything a backward pass needs is kept on the tape by the forward pass: each
+//! coupling layer's conditioner input, hidden activations (and sigmoids for SiLU), raw
+//! outputs (raw s, then t), clamped s, and transformed outputs. No buffer is allocated
+//! after construction, so a pass over a small configuration costs only its arithmetic.
+//!
+//! Backward derivation, per coupling layer with conditioning half a and transformed half
+//! b (loss L, gradient g' with respect to the layer's output b', and a coefficient
+//! alpha with which the layer's log-determinant sum(s) enters L):
+//! - generation, b' = b e^s + t:  g_b = g' e^s, g_t = g', g_s = g' (b' - t) + alpha;
+//! - inversion, b' = (b - t) e^-s: g_b = g' e^-s, g_t = -g_b, g_s = -g' b' + alpha;
+//! - clamp, s = c tanh(r / c):      g_r = g_s (1 - (s / c)^2);
+//! - then the conditioner MLP backward from (g_r, g_t) gives the weight and bias
+//!   gradients and g_a, which is added to the gradient of the conditioning half.
+
+use crate::flow::{Coupling, Flow};
+use crate::real::{act_backward, add_col_sums, bias_act_forward, matmul, simd, tanh_fast, Real};
+use crate::spec::Activation;
+
+/// The per-layer part of a tape.
+#[derive(Debug)]
+struct LayerTape<T> {
+    a_in: Vec<T>,
+    hidden: Vec<Vec<T>>,
+    aux: Vec<Vec<T>>,
+    out: Vec<T>,
+    s: Vec<T>,
+    b_out: Vec<T>,
+}
+
+/// All buffers of one chunk of at most `cap` rows.
+#[derive(Debug)]
+pub(crate) struct Tape<T> {
+    pub cap: usize,
+    /// Threads given to each GEMM (1 when chunks run in parallel instead).
+    pub gemm_threads: usize,
+    layers: Vec<LayerTape<T>>,
+    /// Flow coordinates: z on entry to generation, z on exit from inversion.
+    pub state: Vec<T>,
+    /// Gradient with respect to the flow coordinates (dL/dz after a generation backward).
+    pub grad: Vec<T>,
+    ybuf: Vec<T>,
+    /// Data coordinates: output of generation, input of inversion.
+    pub xbuf: Vec<T>,
+    /// Gradient with respect to the data coordinates.
+    pub gxbuf: Vec<T>,
+    /// Per-row sum of the couplings' log-determinants in the pass's direction.
+    pub logdet: Vec<T>,
+    bufs: [Vec<T>; 3],
+    da: Vec<T>,
+    /// f64 scratch for energy calls: configurations, energies, forces.
+    pub x64: Vec<f64>,
+    pub e64: Vec<f64>,
+    pub f64: Vec<f64>,
+    /// Per-chunk statistics written by the workspace's closures.
+    pub stats: [f64; 4],
+    /// Whether each dense layer's gradient has been written since the last reset (the
+    /// first write overwrites, so gradients never need zeroing).
+    pub written: Vec<bool>,
+    /// The error a closure met on this chunk, checked in chunk order afterwards.
+    pub err: Option<crate::FlowError>,
+    /// Rows this chunk processed since the workspace last reset it.
+    pub rows_done: usize,
+}
+
+impl<T: Real> Tape<T> {
+    /// Allocates every buffer for chunks of up to `cap` rows of `flow`.
+    pub(crate) fn new(flow: &Flow<T>, cap: usize, gemm_threads: usize) -> Self {
+        let (d, dx) = (flow.dim(), flow.data_dim());
+        let h = flow.spec.hidden_width;
+        let silu = flow.spec.activation == Activation::Silu;
+        let z = |len: usize| vec![T::zero(); len];
+        let mut max_w = 0;
+        let layers = flow
+            .layers
+            .iter()
+            .map(|c| {
+                let nh = c.dense.len() - 1;
+                max_w = max_w.max(2 * c.trans.len()).max(c.cond.len());
+                LayerTape {
+                    a_in: z(cap * c.cond.len()),
+                    hidden: (0..nh).map(|_| z(cap * h)).collect(),
+                    aux: (0..nh)
+                        .map(|_| if silu { z(cap * h) } else { Vec::new() })
+                        .collect(),
+                    out: z(cap * 2 * c.trans.len()),
+                    s: z(cap * c.trans.len()),
+                    b_out: z(cap * c.trans.len()),
+                }
+            })
+            .collect();
+        let wmax = max_w.max(h);
+        Tape {
+            cap,
+            gemm_threads,
+            layers,
+            state: z(cap * d),
+            grad: z(cap * d),
+            ybuf: z(cap * d),
+            xbuf: z(cap * dx),
+            gxbuf: z(cap * dx),
+            logdet: z(cap),
+            bufs: [z(cap * wmax), z(cap * wmax), z(cap * wmax)],
+            da: z(cap * d),
+            x64: vec![0.0; cap * dx],
+            e64: vec![0.0; cap],
+            f64: vec![0.0; cap * dx],
+            stats: [0.0; 4],
+            written: vec![false; flow.layers.iter().map(|c| c.dense.len()).sum()],
+            err: None,
+            rows_done: 0,
+        }
+    }
+
+    /// Generation of `n` rows: z in `state` -> x in `xbuf`, with the couplings'
+    /// log-determinant sum(s) in `logdet` (the fixed layers' constant is not included).
+    pub(crate) fn generate(&mut self, flow: &Flow<T>, n: usize) {
+        let d = flow.dim();
+        self.logdet[..n].fill(T::zero());
+        for k in 0..flow.layers.len() {
+            self.coupling(flow, k, n, true);
+        }
+        let src = if let Some(w) = &flow.whitening {
+            matmul(
+                n,
+                d,
+                d,
+                &self.state,
+                false,
+                &w.chol,
+                true,
+                &mut self.ybuf,
+                false,
+                self.gemm_threads,
+            );
+            for row in self.ybuf[..n * d].chunks_exact_mut(d) {
+                for (v, &m) in row.iter_mut().zip(&w.mean) {
+                    *v += m;
+                }
+            }
+            &self.ybuf
+        } else {
+            &self.state
+        };
+        flow.frame
+            .to_data(n, &src[..n * d], &mut self.xbuf[..n * flow.data_dim()]);
+    }
+
+    /// Inversion of `n` rows: x in `xbuf` -> z in `state`, with the couplings'
+    /// log-determinant of the inverse, -sum(s), in `logdet`.
+    pub(crate) fn invert(&mut self, flow: &Flow<T>, n: usize) {
+        let d = flow.dim();
+        if let Some(w) = &flow.whitening {
+            flow.frame.to_model(
+                n,
+                &self.xbuf[..n * flow.data_dim()],
+                &mut self.ybuf[..n * d],
+            );
+            for row in self.ybuf[..n * d].chunks_exact_mut(d) {
+                for (v, &m) in row.iter_mut().zip(&w.mean) {
+                    *v -= m;
+                }
+            }
+            matmul(
+                n,
+                d,
+                d,
+                &self.ybuf,
+                false,
+                &w.chol_inv,
+                true,
+                &mut self.state,
+                false,
+                self.gemm_threads,
+            );
+        } else {
+            flow.frame.to_model(
+                n,
+                &self.xbuf[..n * flow.data_dim()],
+                &mut self.state[..n * d],
+            );
+        }
+        self.logdet[..n].fill(T::zero());
+        for k in (0..flow.layers.len()).rev() {
+            self.coupling(flow, k, n, false);
+        }
+    }
+
+    /// Backward of `generate`: from dL/dx in `gxbuf`, with the couplings' log-det sum
+    /// entering L as `alpha * sum(s)` per row, adds the parameter gradient into `pgrad`
+    /// and leaves dL/dz in `grad`.
+    pub(crate) fn generate_backward(
+        &mut self,
+        flow: &Flow<T>,
+        n: usize,
+        alpha: T,
+        pgrad: &mut [T],
+    ) {
+        let d = flow.dim();
+        if let Some(w) = &flow.whitening {
+            flow.frame.to_model(
+                n,
+                &self.gxbuf[..n * flow.data_dim()],
+                &mut self.ybuf[..n * d],
+            );
+            matmul(
+                n,
+                d,
+                d,
+                &self.ybuf,
+                false,
+                &w.chol,
+                false,
+                &mut self.grad,
+                false,
+                self.gemm_threads,
+            );
+        } else {
+            flow.frame.to_model(
+                n,
+                &self.gxbuf[..n * flow.data_dim()],
+                &mut self.grad[..n * d],
+            );
+        }
+        for k in (0..flow.layers.len()).rev() {
+            self.coupling_backward(flow, k, n, true, alpha, pgrad, true);
+        }
+    }
+
+    /// Backward of `invert`: from dL/dz in `grad`, with the couplings' sum(s) entering L
+    /// as `alpha * sum(s)` per row, adds the parameter gradient into `pgrad`; when
+    /// `input_grad`, leaves dL/dx in `gxbuf`.
+    pub(crate) fn invert_backward(
+        &mut self,
+        flow: &Flow<T>,
+        n: usize,
+        alpha: T,
+        pgrad: &mut [T],
+        input_grad: bool,
+    ) {
+        let d = flow.dim();
+        let nl = flow.layers.len();
+        for k in 0..nl {
+            let need = input_grad || k + 1 < nl;
+            self.coupling_backward(flow, k, n, false, alpha, pgrad, need);
+        }
+        if input_grad {
+            let src = if let Some(w) = &flow.whitening {
+                matmul(
+                    n,
+                    d,
+                    d,
+                    &self.grad,
+                    false,
+                    &w.chol_inv,
+                    false,
+                    &mut self.ybuf,
+                    false,
+                    self.gemm_threads,
+                );
+                &self.ybuf
+            } else {
+                &self.grad
+            };
+            flow.frame
+                .to_data(n, &src[..n * d], &mut self.gxbuf[..n * flow.data_dim()]);
+        }
+    }
+
+    /// Marks every dense layer's gradient as not yet written in this accumulation.
+    pub(crate) fn reset_written(&mut self) {
+        self.written.fill(false);
+    }
+
+    /// One coupling layer in either direction on `state`, recording the tape.
+    fn coupling(&mut self, flow: &Flow<T>, k: usize, n: usize, gen: bool) {
+        let c = &flow.layers[k];
+        let d = flow.dim();
+        let lt = &mut self.layers[k];
+        let (da, db) = (c.cond.len(), c.trans.len());
+        for i in 0..n {
+            let row = &self.state[i * d..(i + 1) * d];
+            for (dst, &j) in lt.a_in[i * da..(i + 1) * da].iter_mut().zip(&c.cond) {
+                *dst = row[j];
+            }
+        }
+        mlp_forward(
+            &flow.params,
+            c,
+            flow.spec.activation,
+            n,
+            lt,
+            self.gemm_threads,
+        );
+        let clamp = T::of(flow.spec.clamp);
+        let inv_clamp = T::one() / clamp;
+        let (state, logdet) = (&mut self.state, &mut self.logdet);
+        simd(|| {
+            for i in 0..n {
+                let out = &lt.out[i * 2 * db..(i + 1) * 2 * db];
+                let srow = &mut lt.s[i * db..(i + 1) * db];
+                let brow = &mut lt.b_out[i * db..(i + 1) * db];
+                let row = &mut state[i * d..(i + 1) * d];
+                let mut sum = T::zero();
+                for j in 0..db {
+                    let s = clamp * tanh_fast(out[j] * inv_clamp);
+                    let t = out[db + j];
+                    let b = row[c.trans[j]];
+                    let bn = if gen {
+                        b * s.fexp() + t
+                    } else {
+                        (b - t) * (-s).fexp()
+                    };
+                    row[c.trans[j]] = bn;
+                    srow[j] = s;
+                    brow[j] = bn;
+                    sum += s;
+                }
+                logdet[i] += if gen { sum } else { -sum };
+            }
+        });
+    }
+
+    /// Backward of one coupling layer (see the module doc for the formulas).
+    #[allow(clippy::too_many_arguments)]
+    fn coupling_backward(
+        &mut self,
+        flow: &Flow<T>,
+        k: usize,
+        n: usize,
+        gen: bool,
+        alpha: T,
+        pgrad: &mut [T],
+        input_grad: bool,
+    ) {
+        let c = &flow.layers[k];
+        let d = flow.dim();
+        let (da, db) = (c.cond.len(), c.trans.len());
+        let clamp = T::of(flow.spec.clamp);
+        let inv_clamp = T::one() / clamp;
+        {
+            let lt = &self.layers[k];
+            let grad = &mut self.grad;
+            let dout = &mut self.bufs[0];
+            simd(|| {
+                for i in 0..n {
+                    let out = &lt.out[i * 2 * db..(i + 1) * 2 * db];
+                    let srow = &lt.s[i * db..(i + 1) * db];
+                    let brow = &lt.b_out[i * db..(i + 1) * db];
+                    let grow = &mut grad[i * d..(i + 1) * d];
+                    let drow = &mut dout[i * 2 * db..(i + 1) * 2 * db];
+                    for j in 0..db {
+                        let s = srow[j];
+                        let g = grow[c.trans[j]];
+                        let (gb, gt, gs) = if gen {
+                            let e = s.fexp();
+                            (g * e, g, g * (brow[j] - out[db + j]) + alpha)
+                        } else {
+                            let e = (-s).fexp();
+                            (g * e, -(g * e), -(g * brow[j]) + alpha)
+                        };
+                        let q = s * inv_clamp;
+                        grow[c.trans[j]] = gb;
+                        drow[j] = gs * (T::one() - q * q);
+                        drow[db + j] = gt;
+                    }
+                }
+            });
+        }
+        let first_dense: usize = flow.layers[..k].iter().map(|l| l.dense.len()).sum();
+        let written = &mut self.written[first_dense..first_dense + c.dense.len()];
+        mlp_backward(
+            &flow.params,
+            pgrad,
+            c,
+            flow.spec.activation,
+            n,
+            &self.layers[k],
+            &mut self.bufs,
+            &mut self.da,
+            input_grad,
+            written,
+            self.gemm_threads,
+        );
+        if input_grad {
+            for i in 0..n {
+                let grow = &mut self.grad[i * d..(i + 1) * d];
+                for (&g, &j) in self.da[i * da..(i + 1) * da].iter().zip(&c.cond) {
+                    grow[j] += g;
+                }
+            }
+        }
+    }
+}
+
+/// The conditioner MLP of coupling `c` on the `n` rows of `lt.a_in`, writing hidden
+/// activations and the raw output into the tape.
+fn mlp_forward<T: Real>(
+    params: &[T],
+    c: &Coupling,
+    act: Activation,
+    n: usize,
+    lt: &mut LayerTape<T>,
+    threads: usize,
+) {
+    let nd = c.dense.len();
+    for (l, dn) in c.dense.iter().enumerate() {
+        let w = &params[dn.w..dn.w + dn.n_in * dn.n_out];
+        let b = &params[dn.b..dn.b + dn.n_out];
+        let (prev, rest) = lt.hidden.split_at_mut(l.min(nd - 1));
+        let input: &[T] = if l == 0 { &lt.a_in } else { &prev[l - 1] };
+        if l + 1 == nd {
+            matmul(
+                n,
+                dn.n_out,
+                dn.n_in,
+                input,
+                false,
+                w,
+                false,
+                &mut lt.out,
+                false,
+                threads,
+            );
+            bias_act_forward(None, n, b, &mut lt.out, &mut []);
+        } else {
+            let out = &mut rest[0];
+            matmul(
+                n, dn.n_out, dn.n_in, input, false, w, false, out, false, threads,
+            );
+            bias_act_forward(Some(act), n, b, out, &mut lt.aux[l]);
+        }
+    }
+}
+
+/// Two distinct mutable elements of a three-buffer array.
+fn pair_mut<T>(bufs: &mut [Vec<T>; 3], i: usize, j: usize) -> (&mut Vec<T>, &mut Vec<T>) {
+    debug_assert!(i != j);
+    let [a, b, c] = bufs;
+    match (i, j) {
+        (0, 1) => (a, b),
+        (0, 2) => (a, c),
+        (1, 0) => (b, a),
+        (1, 2) => (b, c),
+        (2, 0) => (c, a),
+        _ => (c, b),
+    }
+}
+
+/// Backward of `mlp_forward` from the output gradient in `bufs[0]`. Weight gradients
+/// overwrite on a layer's first write of an accumulation and add afterwards.
+#[allow(clippy::too_many_arguments)]
+fn mlp_backward<T: Real>(
+    params: &[T],
+    pgrad: &mut [T],
+    c: &Coupling,
+    act: Activation,
+    n: usize,
+    lt: &LayerTape<T>,
+    bufs: &mut [Vec<T>; 3],
+    da: &mut [T],
+    input_grad: bool,
+    written: &mut [bool],
+    threads: usize,
+) {
+    let nd = c.dense.len();
+    let mut cur = 0;
+    for l in (0..nd).rev() {
+        let dn = c.dense[l];
+        let next = if cur == 1 { 2 } else { 1 };
+        let (g, nxt) = pair_mut(bufs, cur, next);
+        let g = &mut g[..n * dn.n_out];
+        if l + 1 < nd {
+            act_backward(act, &lt.hidden[l][..n * dn.n_out], &lt.aux[l], g);
+        }
+        let input: &[T] = if l == 0 { &lt.a_in } else { &lt.hidden[l - 1] };
+        let acc = written[l];
+        written[l] = true;
+        let (wg, bg) = pgrad[dn.w..dn.b + dn.n_out].split_at_mut(dn.n_in * dn.n_out);
+        matmul(
+            dn.n_in, dn.n_out, n, input, true, g, false, wg, acc, threads,
+        );
+        if !acc {
+            bg.fill(T::zero());
+        }
+        add_col_sums(n, g, bg);
+        let w = &params[dn.w..dn.w + dn.n_in * dn.n_out];
+        if l > 0 {
+            matmul(n, dn.n_in, dn.n_out, g, false, w, true, nxt, false, threads);
+            cur = next;
+        } else if input_grad {
+            matmul(n, dn.n_in, dn.n_out, g, false, w, true, da, false, threads);
+        }
+    }
+}
