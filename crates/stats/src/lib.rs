@@ -10,6 +10,7 @@ pub mod error;
 mod linalg;
 pub mod logspace;
 pub mod mbar;
+pub mod metad;
 pub mod profile;
 pub mod states;
 
@@ -20,6 +21,9 @@ pub use logspace::{
     normalised_log_weights, LogZEstimate,
 };
 pub use mbar::{Expectations, FreeEnergyDifferences, Mbar, MbarOptions};
+pub use metad::{
+    final_bias_log_weights, reweighting_offset, tiwary_parrinello_log_weights, well_tempered_offset,
+};
 pub use profile::{
     compare_profiles, free_energy_profile, reference_profile, Alignment, Bins, Profile,
     ProfileComparison,
