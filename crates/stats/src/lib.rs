@@ -13,6 +13,7 @@ pub mod mbar;
 pub mod metad;
 pub mod profile;
 pub mod states;
+pub mod stop;
 
 pub use bootstrap::{BootstrapOptions, Interval, IntervalMethod, Uncertainty};
 pub use error::{Result, StatsError};
@@ -30,4 +31,8 @@ pub use profile::{
 };
 pub use states::{
     labels_from_signed, state_free_energies, StateFreeEnergies, StateFreeEnergy, StateLabel,
+};
+pub use stop::{
+    free_energies_stable, rounds_without_new_state, visited_bin_fraction, FreeEnergyPoint,
+    Instability, StabilityCriterion, StabilityReport,
 };

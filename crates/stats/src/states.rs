@@ -57,8 +57,9 @@ pub struct StateFreeEnergy {
     /// (its free energy is +inf: it was not seen).
     pub free_energy: Option<f64>,
     /// Bootstrap standard error of `free_energy` in kT; `None` when the state has zero
-    /// weight in any replicate (the standard error is then infinite), when it is the
-    /// reference state (its free energy is 0 by definition), or without replicates.
+    /// weight in any replicate (the standard error is then infinite) or without
+    /// replicates. The reference state has `Some(0.0)`: its free energy is 0 by
+    /// definition in every replicate.
     pub free_energy_err: Option<f64>,
     /// Confidence interval of `free_energy` by the chosen method; the upper end is +inf
     /// when more than the tail fraction of replicates had zero weight in this state.
@@ -141,8 +142,13 @@ pub fn state_free_energies<R: Rng + ?Sized>(
                 population: (full[s] - log_total).exp(),
                 population_err,
                 free_energy: estimate.is_finite().then_some(estimate),
-                free_energy_err: if s == reference { None } else { unc.err },
-                interval: if s == reference || !estimate.is_finite() {
+                free_energy_err: if s == reference { Some(0.0) } else { unc.err },
+                interval: if s == reference {
+                    Some(Interval {
+                        lower: 0.0,
+                        upper: 0.0,
+                    })
+                } else if !estimate.is_finite() {
                     None
                 } else {
                     unc.interval
@@ -326,9 +332,9 @@ mod tests {
         let iv = rare.interval.unwrap();
         assert_eq!(iv.upper, f64::INFINITY);
         assert!(iv.lower.is_finite() && iv.lower < expected);
-        // The reference state has F = 0 and no error bar.
+        // The reference state has F = 0 exactly, so a zero error bar.
         assert_eq!(a.states[0].free_energy, Some(0.0));
-        assert_eq!(a.states[0].free_energy_err, None);
+        assert_eq!(a.states[0].free_energy_err, Some(0.0));
     }
 
     #[test]

@@ -29,13 +29,10 @@ fn final_bias(x: f64) -> f64 {
 }
 
 fn delta_f(est: &StateFreeEnergies) -> (f64, f64) {
-    // F_B − F_A in kT, whichever state is the reference.
+    // F_B − F_A in kT, whichever state is the reference (its error bar is 0).
     let fa = est.states[0].free_energy.unwrap();
     let fb = est.states[1].free_energy.unwrap();
-    let err = est.states[0]
-        .free_energy_err
-        .or(est.states[1].free_energy_err)
-        .unwrap();
+    let err = est.states[0].free_energy_err.unwrap() + est.states[1].free_energy_err.unwrap();
     (fb - fa, err)
 }
 
