@@ -7,13 +7,17 @@
 mod flow;
 mod frame;
 mod real;
+mod sample;
 mod spec;
 mod tape;
+mod train;
 mod workspace;
 
 pub use flow::Flow;
 pub use real::{exp_f32, Real};
+pub use sample::{generate, latent_metropolis, Generated, LatentMcParams, LatentMcResult};
 pub use spec::{Activation, FlowSpec, FrameSpec};
+pub use train::{train, TrainParams, TrainReport};
 pub use workspace::{regularise_energy, KlStats, KlTerm, Threading, Workspace};
 
 use tarn_physics::EnergyError;

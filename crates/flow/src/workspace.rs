@@ -216,11 +216,6 @@ impl<T: Real> Workspace<T> {
         })
     }
 
-    /// The tape of chunk `c` (for copying results out after `run_block`).
-    pub(crate) fn tape(&self, c: usize) -> &Tape<T> {
-        &self.tapes[c]
-    }
-
     fn blocks(&self, n: usize) -> impl Iterator<Item = (usize, usize)> {
         let b = self.block_rows();
         (0..n.div_ceil(b)).map(move |i| (i * b, b.min(n - i * b)))
@@ -522,6 +517,58 @@ impl<T: Real> Workspace<T> {
             n_nonfinite: n_bad,
             n_evaluations: n,
         })
+    }
+}
+
+impl<T: Real> Workspace<T> {
+    /// Generation of the latent rows `z` followed by the energy of each result: writes
+    /// x (as f64), log|det df/dz| (fixed layers included) and the energies (in the
+    /// model's unit; no forces). Chunks call the energy model in parallel.
+    pub(crate) fn generate_with_energy(
+        &mut self,
+        flow: &Flow<T>,
+        z: &[T],
+        energy: &dyn EnergyModel,
+        x: &mut [f64],
+        log_det: &mut [f64],
+        e: &mut [f64],
+    ) -> Result<(), FlowError> {
+        self.check_flow(flow)?;
+        let (d, dx) = (flow.dim(), flow.data_dim());
+        let n = rows_of(z, d, "z")?;
+        expect_len(x, n * dx, "x")?;
+        expect_len(log_det, n, "log_det")?;
+        expect_len(e, n, "energies")?;
+        if energy.dim() != dx {
+            return Err(FlowError::Spec(format!(
+                "energy model has dim {} but the flow's data_dim is {dx}",
+                energy.dim()
+            )));
+        }
+        let fixed = flow.fixed_log_det();
+        for (start, m) in self.blocks(n).collect::<Vec<_>>() {
+            self.run_block(start, m, |tape, _, r0, rows| {
+                tape.state[..rows * d].copy_from_slice(&z[r0 * d..(r0 + rows) * d]);
+                tape.generate(flow, rows);
+                for (o, v) in tape.x64[..rows * dx]
+                    .iter_mut()
+                    .zip(&tape.xbuf[..rows * dx])
+                {
+                    *o = v.to64();
+                }
+                energy.evaluate(&tape.x64[..rows * dx], &mut tape.e64[..rows], None)?;
+                Ok(())
+            })?;
+            for (c, r0, rows) in self.chunks(start, m) {
+                let t = &self.tapes[c];
+                x[r0 * dx..(r0 + rows) * dx].copy_from_slice(&t.x64[..rows * dx]);
+                e[r0..r0 + rows].copy_from_slice(&t.e64[..rows]);
+                for (o, &l) in log_det[r0..r0 + rows].iter_mut().zip(&t.logdet) {
+                    *o = l.to64() + fixed;
+                }
+            }
+        }
+        Ok(())
     }
 }
 
