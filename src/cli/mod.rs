@@ -1,0 +1,442 @@
+//! The command line: argument parsing, exit codes, and the wiring of each command to
+//! the modules that do the work.
+//!
+//! Owns: option names, help texts, exit codes, what is printed on stdout.
+//! Must not touch: the store's layout or the engine's control flow (it calls them).
+//!
+//! Exit codes: 0 success; 1 campaign error (a worker failed past its retries, a stop
+//! rule could not be evaluated); 2 bad input (unreadable or invalid file, unknown
+//! campaign, a campaign already running); 3 interrupted (resumable).
+
+use std::path::{Path, PathBuf};
+use std::process::ExitCode;
+
+use clap::{Parser, Subcommand};
+
+use crate::engine::{self, snapshot, EngineError, RunEnd, RunOptions};
+use crate::report::{self, Tables};
+use crate::spec::{self, Campaign};
+use crate::store::{Store, StoreError};
+
+/// Exit code: success.
+pub const EXIT_OK: u8 = 0;
+/// Exit code: the campaign failed (a task past its retries).
+pub const EXIT_CAMPAIGN: u8 = 1;
+/// Exit code: bad input (file, campaign name, a store in use).
+pub const EXIT_INPUT: u8 = 2;
+/// Exit code: interrupted; `tarn resume NAME` continues.
+pub const EXIT_INTERRUPTED: u8 = 3;
+
+#[derive(Parser, Debug)]
+#[command(
+    name = "tarn",
+    version,
+    about = "Discovery campaigns for metastable states and their free energies",
+    long_about = "tarn runs unattended discovery campaigns on a system defined by an energy \
+function: rounds of explore (find new configurations), dedup (quench to minima and \
+identify states), retrain (fit a RealNVP flow to data and energy) and evaluate \
+(reweight to the Boltzmann distribution, free energies with error bars). Every round \
+is committed to an embedded database, so a campaign killed at any moment resumes \
+where it stood.\n\nStart with `tarn new --list`, then `tarn check FILE` and `tarn run FILE`.",
+    after_help = "Exit codes: 0 success, 1 campaign error, 2 bad input, 3 interrupted (resumable)."
+)]
+pub struct Cli {
+    /// Directory holding campaign stores (one subdirectory per campaign).
+    #[arg(long, global = true, env = "TARN_STATE", default_value = "state", value_name = "DIR")]
+    pub state: PathBuf,
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Subcommand, Debug)]
+pub enum Command {
+    /// Write a commented campaign file from a built-in template.
+    New {
+        /// Template name (see --list).
+        template: Option<String>,
+        /// Where to write the file (default: TEMPLATE.toml in the current directory).
+        #[arg(long, value_name = "FILE")]
+        out: Option<PathBuf>,
+        /// List the templates.
+        #[arg(long)]
+        list: bool,
+    },
+    /// Validate a campaign file and print the resolved plan, including every command
+    /// it will run.
+    Check {
+        file: PathBuf,
+        #[arg(long)]
+        json: bool,
+    },
+    /// Start a campaign, or continue it if its store exists.
+    Run {
+        file: PathBuf,
+        /// Go on although the campaign file changed since the store was created; the
+        /// change is recorded in the event log.
+        #[arg(long)]
+        accept_change: bool,
+        /// No progress output.
+        #[arg(long, short)]
+        quiet: bool,
+    },
+    /// Continue an interrupted campaign (the campaign file is read from its store).
+    Resume {
+        name: String,
+        #[arg(long, short)]
+        quiet: bool,
+    },
+    /// Where a campaign stands; works while it runs.
+    Status {
+        name: String,
+        #[arg(long)]
+        json: bool,
+    },
+    /// Per-round metrics and cost.
+    Rounds {
+        name: String,
+        #[arg(long)]
+        json: bool,
+    },
+    /// The catalogue of states: who found what, when, with which seed, at what cost.
+    States {
+        name: String,
+        #[arg(long)]
+        json: bool,
+    },
+    /// Write samples, energies, states and metrics as .npy, .csv and .json files.
+    Export {
+        name: String,
+        #[arg(long, value_name = "DIR")]
+        out: PathBuf,
+    },
+    /// A hash of all scientific content (no times, hosts or durations): equal digests
+    /// mean equal results.
+    Digest { name: String },
+    /// Run a built-in worker on the task named by $TARN_TASK (started by tarn).
+    Work {
+        /// The worker kind.
+        kind: String,
+    },
+    /// Benchmarks that print figures (one JSON object per row with --json).
+    Bench {
+        /// What to measure: engine.
+        what: String,
+        #[arg(long)]
+        json: bool,
+        /// Tasks to run in the engine benchmark.
+        #[arg(long, default_value_t = 200)]
+        tasks: u32,
+    },
+}
+
+/// An error at the command line's edge, with its exit code.
+pub struct Failure {
+    pub code: u8,
+    pub message: String,
+}
+
+impl Failure {
+    fn input(m: impl std::fmt::Display) -> Self {
+        Failure { code: EXIT_INPUT, message: m.to_string() }
+    }
+}
+
+impl From<EngineError> for Failure {
+    fn from(e: EngineError) -> Self {
+        Failure::input(e)
+    }
+}
+
+impl From<StoreError> for Failure {
+    fn from(e: StoreError) -> Self {
+        Failure::input(e)
+    }
+}
+
+impl From<anyhow::Error> for Failure {
+    fn from(e: anyhow::Error) -> Self {
+        Failure { code: EXIT_CAMPAIGN, message: format!("{e:#}") }
+    }
+}
+
+/// The binary's entry point.
+pub fn main() -> ExitCode {
+    let cli = Cli::parse();
+    let result = match cli.command {
+        Command::Work { ref kind } => return crate::workers::main(kind),
+        _ => dispatch(&cli),
+    };
+    match result {
+        Ok(code) => ExitCode::from(code),
+        Err(f) => {
+            eprintln!("tarn: {}", f.message);
+            ExitCode::from(f.code)
+        }
+    }
+}
+
+fn dispatch(cli: &Cli) -> Result<u8, Failure> {
+    match &cli.command {
+        Command::New { template, out, list } => cmd_new(template.as_deref(), out.as_deref(), *list),
+        Command::Check { file, json } => cmd_check(file, *json),
+        Command::Run { file, accept_change, quiet } => {
+            let campaign = Campaign::load(file).map_err(Failure::input)?;
+            let opts = run_options(cli, *accept_change, *quiet)?;
+            prepare_state(&opts.state_dir, &campaign.name)?;
+            let store = engine::open_for_run(&campaign, file, &opts)?;
+            run_engine(campaign, store, &opts)
+        }
+        Command::Resume { name, quiet } => {
+            let opts = run_options(cli, false, *quiet)?;
+            let (campaign, store) = engine::open_for_resume(name, &opts)?;
+            prepare_state(&opts.state_dir, name)?;
+            run_engine(campaign, store, &opts)
+        }
+        Command::Status { name, json } => cmd_status(&cli.state, name, *json),
+        Command::Rounds { name, json } => {
+            let t = read_tables(&cli.state, name)?;
+            print_or_json(*json, &t.rounds, || report::rounds_text(&t))
+        }
+        Command::States { name, json } => {
+            let t = read_tables(&cli.state, name)?;
+            print_or_json(*json, &t.states, || report::states_text(&t))
+        }
+        Command::Export { name, out } => {
+            let store = open_store(&cli.state, name)?;
+            let current = store.current_campaign()?;
+            let meta = store.meta()?;
+            let c = Campaign::parse(&current.path, &current.text, Path::new(&meta.base_dir)).map_err(Failure::input)?;
+            let files = report::export::export(&store, c.system.dim, out)?;
+            println!("wrote {} files to {}: {}", files.len(), out.display(), files.join(", "));
+            Ok(EXIT_OK)
+        }
+        Command::Digest { name } => {
+            let store = open_store(&cli.state, name)?;
+            println!("{}", store.digest()?);
+            Ok(EXIT_OK)
+        }
+        Command::Bench { what, json, tasks } => crate::bench::run(what, *json, *tasks).map_err(|e| Failure::input(format!("{e:#}"))),
+        Command::Work { .. } => unreachable!("handled in main"),
+    }
+}
+
+fn run_options(cli: &Cli, accept_change: bool, quiet: bool) -> Result<RunOptions, Failure> {
+    let exe = std::env::current_exe().map_err(|e| Failure::input(format!("cannot find the tarn binary: {e}")))?;
+    Ok(RunOptions { state_dir: cli.state.clone(), accept_change, quiet, exe })
+}
+
+/// Creates the campaign directory and starts logging into it.
+fn prepare_state(state: &Path, name: &str) -> Result<(), Failure> {
+    let dir = engine::campaign_dir(state, name);
+    std::fs::create_dir_all(&dir).map_err(|e| Failure::input(format!("cannot create {}: {e}", dir.display())))?;
+    init_logging(&dir.join("tarn.log"));
+    Ok(())
+}
+
+fn init_logging(file: &Path) {
+    use tracing_subscriber::prelude::*;
+    use tracing_subscriber::{fmt, EnvFilter};
+    let Ok(f) = std::fs::OpenOptions::new().create(true).append(true).open(file) else {
+        return;
+    };
+    let file_layer = fmt::layer()
+        .with_ansi(false)
+        .with_writer(std::sync::Mutex::new(f))
+        .with_filter(EnvFilter::try_from_default_env().unwrap_or_else(|_| EnvFilter::new("info")));
+    let stderr_layer = std::env::var_os("RUST_LOG").map(|_| {
+        fmt::layer().with_writer(std::io::stderr).with_filter(EnvFilter::from_default_env())
+    });
+    let _ = tracing_subscriber::registry().with(file_layer).with(stderr_layer).try_init();
+}
+
+fn run_engine(campaign: Campaign, store: Store, opts: &RunOptions) -> Result<u8, Failure> {
+    let rt = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()
+        .map_err(|e| Failure::input(format!("cannot start the runtime: {e}")))?;
+    let name = campaign.name.clone();
+    let end = rt.block_on(async {
+        let level = engine::install_signals(opts.quiet);
+        engine::run(campaign, store, opts, level).await
+    });
+    rt.shutdown_timeout(std::time::Duration::from_secs(1));
+    match end {
+        Ok(RunEnd::Finished(d)) => {
+            if !opts.quiet {
+                println!("campaign {name} finished: {}", d.reason);
+                println!("see `tarn states {name}` and `tarn rounds {name}`");
+            }
+            Ok(EXIT_OK)
+        }
+        Ok(RunEnd::Interrupted) => Err(Failure {
+            code: EXIT_INTERRUPTED,
+            message: format!("campaign {name} interrupted; everything committed is kept. Continue with `tarn resume {name}`"),
+        }),
+        Ok(RunEnd::Failed(m)) => Err(Failure { code: EXIT_CAMPAIGN, message: m }),
+        Err(e) => Err(Failure { code: EXIT_CAMPAIGN, message: e.to_string() }),
+    }
+}
+
+fn open_store(state: &Path, name: &str) -> Result<Store, Failure> {
+    let dir = engine::campaign_dir(state, name);
+    if !Store::exists(&dir) {
+        return Err(Failure::input(format!("no campaign '{name}' under {}", state.display())));
+    }
+    Ok(Store::open(&dir)?)
+}
+
+/// The read tables: from the store when it is free, from the running engine's published
+/// tables when it is locked.
+fn read_tables(state: &Path, name: &str) -> Result<Tables, Failure> {
+    let dir = engine::campaign_dir(state, name);
+    if !Store::exists(&dir) {
+        return Err(Failure::input(format!("no campaign '{name}' under {}", state.display())));
+    }
+    match Store::open(&dir) {
+        Ok(store) => Ok(report::tables(&store)?),
+        Err(StoreError::Locked { .. }) => {
+            let text = std::fs::read_to_string(snapshot::tables_path(&dir)).map_err(|_| Failure::input("the campaign is running and has not published its tables yet; try again after its first round"))?;
+            serde_json::from_str(&text).map_err(|e| Failure::input(format!("tables.json: {e}")))
+        }
+        Err(e) => Err(e.into()),
+    }
+}
+
+fn print_or_json<T: serde::Serialize>(json: bool, value: &T, text: impl FnOnce() -> String) -> Result<u8, Failure> {
+    if json {
+        println!("{}", serde_json::to_string_pretty(value).expect("serializable"));
+    } else {
+        print!("{}", text());
+    }
+    Ok(EXIT_OK)
+}
+
+fn cmd_status(state: &Path, name: &str, json: bool) -> Result<u8, Failure> {
+    let dir = engine::campaign_dir(state, name);
+    if !Store::exists(&dir) {
+        return Err(Failure::input(format!("no campaign '{name}' under {}", state.display())));
+    }
+    let snap = snapshot::read(&dir);
+    let (running, tables) = match Store::open(&dir) {
+        Ok(store) => (false, Some(report::tables(&store)?)),
+        Err(StoreError::Locked { .. }) => (true, None),
+        Err(e) => return Err(e.into()),
+    };
+    let phase = match (&snap, running) {
+        (Some(s), true) => format!("running (pid {} on {})", s.pid, s.host),
+        (_, true) => "running".to_string(),
+        (_, false) => match tables.as_ref().and_then(|t| t.finished.clone()) {
+            Some(reason) => format!("finished: {reason}"),
+            None => match snap.as_ref().map(|s| s.phase.as_str()) {
+                Some("failed") => format!("failed: {} (resumable)", snap.as_ref().map(|s| s.message.clone()).unwrap_or_default()),
+                Some("running") => "stopped without a clean exit (killed?); resumable".to_string(),
+                Some(p) => format!("{p}; resumable"),
+                None => "not started".to_string(),
+            },
+        },
+    };
+    let (rounds_done, states, evals) = match &tables {
+        Some(t) => (t.rounds.len() as u32, t.states.len() as u32, t.rounds.iter().map(|r| r.energy_evals).sum::<u64>()),
+        None => snap.as_ref().map(|s| (s.rounds_done, s.states, s.energy_evals)).unwrap_or((0, 0, 0)),
+    };
+    if json {
+        let v = serde_json::json!({
+            "campaign": name, "running": running, "phase": phase, "rounds_done": rounds_done,
+            "states": states, "energy_evals": evals,
+            "round": snap.as_ref().map(|s| s.round), "stage": snap.as_ref().map(|s| s.stage.clone()),
+            "tasks_running": snap.as_ref().map(|s| s.tasks_running.clone()).unwrap_or_default(),
+            "updated_unix": snap.as_ref().map(|s| s.updated_unix),
+        });
+        println!("{}", serde_json::to_string_pretty(&v).expect("json"));
+        return Ok(EXIT_OK);
+    }
+    println!("campaign {name}: {phase}");
+    println!("  rounds done: {rounds_done}   states: {states}   energy evaluations: {evals}");
+    if let (true, Some(s)) = (running, &snap) {
+        println!("  now: round {} of at most {}, stage {} ({}/{} tasks of the round done)", s.round, s.max_rounds, s.stage, s.tasks_done_this_round, s.tasks_this_round);
+        if !s.tasks_running.is_empty() {
+            println!("  running: {}", s.tasks_running.join(", "));
+        }
+        let age = crate::store::now_unix() - s.updated_unix;
+        println!("  last update {age:.0} s ago");
+    }
+    Ok(EXIT_OK)
+}
+
+fn cmd_check(file: &Path, json: bool) -> Result<u8, Failure> {
+    let c = Campaign::load(file).map_err(Failure::input)?;
+    let exe = std::env::current_exe().unwrap_or_else(|_| PathBuf::from("tarn"));
+    let commands: Vec<serde_json::Value> = c
+        .stages()
+        .iter()
+        .map(|s| {
+            let (p, a) = engine::resolve_command(&s.worker, &exe, &c.base_dir);
+            let mut argv = vec![p.display().to_string()];
+            argv.extend(a);
+            serde_json::json!({"stage": s.name, "role": s.role, "walkers": s.walkers, "argv": argv})
+        })
+        .collect();
+    if json {
+        let v = serde_json::json!({
+            "name": c.name, "seed": c.seed, "kT": c.kt, "system": c.system.table, "dim": c.system.dim,
+            "start_configurations": c.start.rows(), "commands": commands,
+            "max_rounds": c.stop.max_rounds, "file_hash": c.source_hash,
+        });
+        println!("{}", serde_json::to_string_pretty(&v).expect("json"));
+        return Ok(EXIT_OK);
+    }
+    println!("{}: campaign '{}' is valid", file.display(), c.name);
+    println!("  system      {}   kT = {}   seed = {}", c.system.label, c.kt, c.seed);
+    println!("  start       {} configuration(s)", c.start.rows());
+    println!("  each round:");
+    for s in c.stages() {
+        let what = match &s.worker {
+            spec::Worker::Builtin(k) => format!("built-in '{k}'"),
+            spec::Worker::Command(_) => "command".to_string(),
+        };
+        let fan = if s.role == crate::protocol::Role::Explore { format!(" x {} walkers", s.walkers) } else { String::new() };
+        println!("    {:<9} {:<14} {what}{fan}", s.role.as_str(), s.name);
+    }
+    let r = &c.stop;
+    let mut rules = vec![format!("max_rounds = {}", r.max_rounds)];
+    if let Some(v) = r.max_energy_evals { rules.push(format!("max_energy_evals = {v}")); }
+    if let Some(v) = r.max_wall_seconds { rules.push(format!("max_wall_seconds = {v}")); }
+    if let Some(v) = r.expected_states { rules.push(format!("expected_states = {v}")); }
+    if let Some(v) = r.quiet_rounds { rules.push(format!("quiet_rounds = {v}")); }
+    println!("  stops when  {}", rules.join(" or "));
+    let e = &c.executor;
+    println!(
+        "  executor    {}: {} tasks at a time, timeout {:.0} s, {} attempt(s) per task, {} thread(s) per task",
+        e.kind, e.max_parallel, e.timeout.as_secs_f64(), e.retry.attempts, e.threads_per_task
+    );
+    println!("  commands it will run (never through a shell):");
+    for cmd in &commands {
+        let argv: Vec<String> = cmd["argv"].as_array().into_iter().flatten().filter_map(|v| v.as_str().map(String::from)).collect();
+        println!("    {:<14} {}", cmd["stage"].as_str().unwrap_or(""), argv.join(" "));
+    }
+    Ok(EXIT_OK)
+}
+
+fn cmd_new(template: Option<&str>, out: Option<&Path>, list: bool) -> Result<u8, Failure> {
+    let all = spec::templates::TEMPLATES;
+    if list || template.is_none() {
+        println!("templates (write one with `tarn new NAME`):");
+        for t in all {
+            println!("  {:<18} {}", t.name, t.summary);
+        }
+        return Ok(EXIT_OK);
+    }
+    let name = template.expect("checked");
+    let Some(t) = all.iter().find(|t| t.name == name) else {
+        let names: Vec<&str> = all.iter().map(|t| t.name).collect();
+        return Err(Failure::input(format!("no template '{name}' (choose one of: {})", names.join(", "))));
+    };
+    let path = out.map(Path::to_path_buf).unwrap_or_else(|| PathBuf::from(format!("{name}.toml")));
+    if path.exists() {
+        return Err(Failure::input(format!("{} exists; choose another --out or remove it", path.display())));
+    }
+    std::fs::write(&path, t.text).map_err(|e| Failure::input(format!("cannot write {}: {e}", path.display())))?;
+    println!("wrote {}; check it with `tarn check {}`", path.display(), path.display());
+    Ok(EXIT_OK)
+}

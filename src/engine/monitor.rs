@@ -1,0 +1,210 @@
+//! The engine's observers: one closed set of events, rendered as a progress view on a
+//! terminal or plain lines elsewhere, logged through `tracing`, and folded into the
+//! status snapshot.
+//!
+//! Owns: presentation of a running campaign. Must not touch: the store, processes.
+
+use std::io::IsTerminal;
+use std::path::PathBuf;
+use std::sync::Mutex;
+
+use indicatif::{MultiProgress, ProgressBar, ProgressDrawTarget, ProgressStyle};
+
+use super::snapshot::{self, Snapshot};
+use crate::store::now_unix;
+
+/// Everything the engine tells its observers.
+#[derive(Debug, Clone)]
+pub enum Event {
+    RoundStarted { round: u32, tasks: u32 },
+    StageStarted { round: u32, stage: String, tasks: u32 },
+    TaskStarted { id: String, attempt: u32 },
+    AttemptFailed { id: String, attempt: u32, error: String, retry_in: Option<f64> },
+    TaskDone { id: String, energy_evals: u64, skipped: bool },
+    RoundDone { round: u32, new_states: u32, states: u32, energy_evals: u64 },
+    StopRequested { hard: bool },
+    Finished { reason: String },
+    Failed { message: String },
+    Interrupted,
+}
+
+/// Renders events and keeps the snapshot.
+pub struct Monitor {
+    inner: Mutex<Inner>,
+    snapshot_dir: PathBuf,
+}
+
+struct Inner {
+    snap: Snapshot,
+    bars: Option<Bars>,
+    quiet: bool,
+}
+
+struct Bars {
+    multi: MultiProgress,
+    round: ProgressBar,
+    stage: Option<ProgressBar>,
+}
+
+impl Monitor {
+    /// A monitor for a campaign directory; progress bars only on a terminal.
+    pub fn new(dir: PathBuf, mut snap: Snapshot, quiet: bool) -> Self {
+        snap.phase = "running".into();
+        snap.updated_unix = now_unix();
+        let bars = (!quiet && std::io::stderr().is_terminal()).then(|| {
+            let multi = MultiProgress::with_draw_target(ProgressDrawTarget::stderr());
+            let round = multi.add(ProgressBar::new(u64::from(snap.max_rounds)));
+            round.set_style(
+                ProgressStyle::with_template("{prefix:>8} [{bar:30}] {pos}/{len} rounds  {msg}")
+                    .expect("template")
+                    .progress_chars("=> "),
+            );
+            round.set_prefix("campaign");
+            round.set_position(u64::from(snap.rounds_done));
+            Bars { multi, round, stage: None }
+        });
+        let m = Monitor {
+            inner: Mutex::new(Inner { snap, bars, quiet }),
+            snapshot_dir: dir,
+        };
+        m.publish();
+        m
+    }
+
+    /// Prints a line above the progress view (or plainly).
+    pub fn line(&self, text: &str) {
+        let inner = self.inner.lock().expect("monitor lock");
+        if inner.quiet {
+            return;
+        }
+        match &inner.bars {
+            Some(b) => b.multi.suspend(|| eprintln!("{text}")),
+            None => eprintln!("{text}"),
+        }
+    }
+
+    /// Records an event: log, render, snapshot.
+    pub fn emit(&self, event: Event) {
+        let text = self.apply(&event);
+        if let Some(t) = text {
+            self.line(&t);
+        }
+        self.publish();
+    }
+
+    fn apply(&self, event: &Event) -> Option<String> {
+        let mut guard = self.inner.lock().expect("monitor lock");
+        let inner = &mut *guard;
+        let plain = inner.bars.is_none();
+        let snap = &mut inner.snap;
+        snap.updated_unix = now_unix();
+        let text = match event {
+            Event::RoundStarted { round, tasks } => {
+                snap.round = *round;
+                snap.tasks_this_round = *tasks;
+                snap.tasks_done_this_round = 0;
+                tracing::info!(round, tasks, "round started");
+                plain.then(|| format!("round {round}: {tasks} tasks"))
+            }
+            Event::StageStarted { round, stage, tasks } => {
+                snap.stage = stage.clone();
+                tracing::info!(round, stage = %stage, tasks, "stage started");
+                if let Some(b) = inner.bars.as_mut() {
+                    if let Some(old) = b.stage.take() {
+                        old.finish_and_clear();
+                    }
+                    let bar = b.multi.add(ProgressBar::new(u64::from(*tasks)));
+                    bar.set_style(
+                        ProgressStyle::with_template("{prefix:>8} [{bar:30}] {pos}/{len} tasks  {msg}")
+                            .expect("template")
+                            .progress_chars("=> "),
+                    );
+                    bar.set_prefix(stage.chars().take(8).collect::<String>());
+                    b.stage = Some(bar);
+                    None
+                } else {
+                    Some(format!("round {round}: stage {stage} ({tasks} tasks)"))
+                }
+            }
+            Event::TaskStarted { id, attempt } => {
+                snap.tasks_running.push(id.clone());
+                tracing::debug!(task = %id, attempt, "task started");
+                None
+            }
+            Event::AttemptFailed { id, attempt, error, retry_in } => {
+                snap.tasks_running.retain(|t| t != id);
+                tracing::warn!(task = %id, attempt, error = %error, "attempt failed");
+                Some(match retry_in {
+                    Some(s) => format!("task {id}: attempt {attempt} failed: {error}\n  retrying in {s:.1} s"),
+                    None => format!("task {id}: attempt {attempt} failed: {error}"),
+                })
+            }
+            Event::TaskDone { id, energy_evals, skipped } => {
+                snap.tasks_running.retain(|t| t != id);
+                snap.tasks_done_this_round += 1;
+                snap.energy_evals += energy_evals;
+                tracing::info!(task = %id, energy_evals, skipped, "task done");
+                if let Some(bar) = inner.bars.as_ref().and_then(|b| b.stage.as_ref()) {
+                    bar.inc(1);
+                    bar.set_message(id.clone());
+                }
+                None
+            }
+            Event::RoundDone { round, new_states, states, energy_evals } => {
+                snap.rounds_done = *round;
+                snap.states = *states;
+                tracing::info!(round, new_states, states, energy_evals, "round done");
+                let msg = format!("round {round} done: {new_states} new states, {states} in the catalogue, {energy_evals} energy evaluations");
+                if let Some(b) = inner.bars.as_ref() {
+                    b.round.set_position(u64::from(*round));
+                    b.round.set_message(format!("{states} states"));
+                }
+                Some(msg)
+            }
+            Event::StopRequested { hard } => {
+                snap.message = if *hard { "ending running tasks now".into() } else { "stopping after running tasks commit".into() };
+                Some(if *hard {
+                    "second interrupt: ending running workers now; the campaign stays resumable".to_string()
+                } else {
+                    "interrupt: finishing the running tasks, then stopping (press Ctrl-C again to end them now)".to_string()
+                })
+            }
+            Event::Finished { reason } => {
+                snap.phase = "finished".into();
+                snap.message = reason.clone();
+                snap.tasks_running.clear();
+                tracing::info!(reason = %reason, "campaign finished");
+                Some(format!("campaign finished: {reason}"))
+            }
+            Event::Failed { message } => {
+                snap.phase = "failed".into();
+                snap.message = message.clone();
+                snap.tasks_running.clear();
+                tracing::error!(message = %message, "campaign failed");
+                None
+            }
+            Event::Interrupted => {
+                snap.phase = "interrupted".into();
+                snap.tasks_running.clear();
+                tracing::warn!("campaign interrupted");
+                None
+            }
+        };
+        if matches!(event, Event::Finished { .. } | Event::Failed { .. } | Event::Interrupted) {
+            if let Some(b) = inner.bars.take() {
+                if let Some(s) = b.stage {
+                    s.finish_and_clear();
+                }
+                b.round.finish_and_clear();
+            }
+        }
+        text
+    }
+
+    fn publish(&self) {
+        let snap = self.inner.lock().expect("monitor lock").snap.clone();
+        if let Err(e) = snapshot::write_json(&snapshot::path(&self.snapshot_dir), &snap) {
+            tracing::warn!(error = %e, "cannot write the status snapshot");
+        }
+    }
+}

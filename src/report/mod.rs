@@ -1,0 +1,163 @@
+//! The read side: the tables that `status`, `rounds`, `states` and `export` print, built
+//! from the store (or, while a campaign runs, from the tables file it publishes).
+//!
+//! Owns: the names and meanings of every column and JSON key users read.
+//! Must not touch: the engine's control flow; it only reads.
+
+pub mod export;
+
+use serde::{Deserialize, Serialize};
+
+use crate::store::{RoundRecord, StateRecord, Store, StoreError};
+
+/// Everything the read commands print.
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+pub struct Tables {
+    pub campaign: String,
+    pub rounds: Vec<RoundRow>,
+    pub states: Vec<StateRow>,
+    pub finished: Option<String>,
+}
+
+/// One row of `tarn rounds`.
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+pub struct RoundRow {
+    pub round: u32,
+    pub new_states: u32,
+    pub states: u32,
+    pub energy_evals: u64,
+    pub cumulative_energy_evals: u64,
+    pub cpu_seconds: f64,
+    pub wall_seconds: f64,
+    pub stages: Vec<crate::store::StageTotals>,
+    pub stop: Option<String>,
+}
+
+/// One row of `tarn states` (the keys promised in the project's docs).
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+pub struct StateRow {
+    pub id: u32,
+    /// Energy of the quenched minimum, in the system's energy unit.
+    pub energy: f64,
+    pub found_round: u32,
+    pub found_stage: String,
+    pub found_task: String,
+    pub found_walker: u32,
+    pub found_seed: u64,
+    pub found_sample: u64,
+    pub representative: Vec<f64>,
+    /// In kT, relative to the most populated state; null until estimated.
+    pub free_energy: Option<f64>,
+    pub free_energy_err: Option<f64>,
+    /// Energy evaluations spent before the discovery (see DEVELOPERS.md).
+    pub cost_to_find: u64,
+    pub sightings: u64,
+}
+
+impl From<&RoundRecord> for RoundRow {
+    fn from(r: &RoundRecord) -> Self {
+        RoundRow {
+            round: r.round,
+            new_states: r.new_states,
+            states: r.states_total,
+            energy_evals: r.energy_evals,
+            cumulative_energy_evals: r.cumulative_energy_evals,
+            cpu_seconds: r.cpu_seconds,
+            wall_seconds: r.wall_seconds,
+            stages: r.stages.clone(),
+            stop: r.stop.as_ref().map(|s| s.reason.clone()),
+        }
+    }
+}
+
+impl From<&StateRecord> for StateRow {
+    fn from(s: &StateRecord) -> Self {
+        let last = s.estimates.last();
+        StateRow {
+            id: s.id,
+            energy: s.energy,
+            found_round: s.found.round,
+            found_stage: s.found.stage.clone(),
+            found_task: s.found.task.clone(),
+            found_walker: s.found.walker,
+            found_seed: s.found.seed,
+            found_sample: s.found.sample_index,
+            representative: s.representative.clone(),
+            free_energy: last.map(|e| e.free_energy),
+            free_energy_err: last.and_then(|e| e.free_energy_err),
+            cost_to_find: s.found.cost_to_find,
+            sightings: s.sightings.values().sum(),
+        }
+    }
+}
+
+/// Builds the tables from the store.
+pub fn tables(store: &Store) -> Result<Tables, StoreError> {
+    Ok(Tables {
+        campaign: store.meta()?.campaign,
+        rounds: store.rounds()?.iter().map(RoundRow::from).collect(),
+        states: store.states()?.iter().map(StateRow::from).collect(),
+        finished: store.finished()?.map(|d| d.reason),
+    })
+}
+
+/// Formats the rounds table for people.
+pub fn rounds_text(t: &Tables) -> String {
+    let mut out = String::from("round  new  states  energy evals  cumulative    cpu s   wall s  stop\n");
+    for r in &t.rounds {
+        out.push_str(&format!(
+            "{:>5}  {:>3}  {:>6}  {:>12}  {:>10}  {:>7.1}  {:>7.1}  {}\n",
+            r.round,
+            r.new_states,
+            r.states,
+            r.energy_evals,
+            r.cumulative_energy_evals,
+            r.cpu_seconds,
+            r.wall_seconds,
+            r.stop.as_deref().unwrap_or("")
+        ));
+        for s in &r.stages {
+            let metrics: Vec<String> = s.metrics.iter().map(|(k, v)| format!("{k}={}", short(*v))).collect();
+            out.push_str(&format!(
+                "         {:<12} {:>3} tasks {:>8} samples {:>12} evals  {}\n",
+                s.name,
+                s.tasks,
+                s.samples,
+                s.energy_evals,
+                metrics.join(" ")
+            ));
+        }
+    }
+    if t.rounds.is_empty() {
+        out.push_str("(no round completed yet)\n");
+    }
+    out
+}
+
+/// Formats the catalogue for people.
+pub fn states_text(t: &Tables) -> String {
+    let mut out = String::from("state        energy  found in  task                     seed                  cost to find  sightings  F [kT]\n");
+    for s in &t.states {
+        let f = match (s.free_energy, s.free_energy_err) {
+            (Some(f), Some(e)) => format!("{f:.3} ± {e:.3}"),
+            (Some(f), None) => format!("{f:.3}"),
+            _ => "-".into(),
+        };
+        out.push_str(&format!(
+            "{:>5}  {:>12.6}  round {:>3}  {:<24} {:<20}  {:>12}  {:>9}  {}\n",
+            s.id, s.energy, s.found_round, s.found_task, s.found_seed, s.cost_to_find, s.sightings, f
+        ));
+    }
+    if t.states.is_empty() {
+        out.push_str("(no state found yet)\n");
+    }
+    out
+}
+
+fn short(v: f64) -> String {
+    if v == v.trunc() && v.abs() < 1e9 {
+        format!("{v:.0}")
+    } else {
+        format!("{v:.4}")
+    }
+}

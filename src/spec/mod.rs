@@ -1,0 +1,710 @@
+//! Campaign files: parsing, validation, and the checked domain type the engine runs.
+//!
+//! Owns: the campaign-file format (TOML), its defaults, and every message about a bad
+//! campaign file. Must not touch: the store, processes, task directories.
+//!
+//! Parsing happens in two steps. Serde reads the text into loose `Raw*` structs that
+//! refuse unknown keys; then [`Campaign::from_raw`] checks meanings (ranges, names,
+//! kinds, shapes) and builds the domain type. Every error carries the key path and,
+//! where the key exists in the file, its line, column and the line itself.
+
+pub mod render;
+pub mod templates;
+
+use std::collections::BTreeSet;
+use std::ops::Range;
+use std::path::{Path, PathBuf};
+use std::time::Duration;
+
+use serde::Deserialize;
+use sha2::{Digest, Sha256};
+
+pub use render::SpecError;
+
+use crate::protocol::{npy, Array, Role};
+
+/// Built-in worker kinds, by the role they can fill.
+pub const BUILTIN_KINDS: &[(Role, &str, &str)] = &[
+    (Role::Explore, "hold", "keep the walker at its start (one sample); for tests and overhead benchmarks"),
+    (Role::Explore, "metropolis", "Metropolis Monte Carlo in configuration space"),
+    (Role::Explore, "langevin", "Langevin dynamics (BAOAB) at a temperature factor"),
+    (Role::Explore, "metadynamics", "well-tempered metadynamics along collective variables"),
+    (Role::Explore, "latent-metropolis", "Metropolis Monte Carlo in the flow's latent space"),
+    (Role::Explore, "generate", "independent samples drawn from the flow, with log weights"),
+    (Role::Dedup, "quench", "quench to the local minimum (FIRE) and match fingerprints"),
+    (Role::Retrain, "realnvp", "fit a RealNVP flow to the pooled samples and the energy"),
+    (Role::Evaluate, "reweight", "reweight flow samples: ESS, free energies with error bars"),
+];
+
+// ---------------------------------------------------------------------------------
+// Raw (loose) form, as serde reads it.
+// ---------------------------------------------------------------------------------
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawCampaign {
+    name: String,
+    seed: u64,
+    #[serde(rename = "kT")]
+    kt: f64,
+    system: toml::Table,
+    start: RawStart,
+    explore: Vec<RawStage>,
+    dedup: RawStage,
+    retrain: Option<RawStage>,
+    evaluate: Option<RawStage>,
+    #[serde(default)]
+    stop: RawStop,
+    #[serde(default)]
+    executor: RawExecutor,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawStart {
+    points: Option<Vec<Vec<f64>>>,
+    file: Option<String>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawStage {
+    name: Option<String>,
+    kind: Option<String>,
+    command: Option<Vec<String>>,
+    walkers: Option<u32>,
+    restart: Option<String>,
+    timeout_seconds: Option<f64>,
+    pool_limit: Option<u64>,
+    #[serde(default)]
+    params: toml::Table,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawStop {
+    max_rounds: Option<u32>,
+    max_energy_evals: Option<u64>,
+    max_wall_seconds: Option<f64>,
+    expected_states: Option<u32>,
+    quiet_rounds: Option<u32>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawExecutor {
+    kind: Option<String>,
+    max_parallel: Option<u32>,
+    timeout_seconds: Option<f64>,
+    threads_per_task: Option<u32>,
+    keep_task_dirs: Option<String>,
+    #[serde(default)]
+    retry: RawRetry,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawRetry {
+    attempts: Option<u32>,
+    backoff: Option<String>,
+    initial_seconds: Option<f64>,
+    max_seconds: Option<f64>,
+    jitter: Option<f64>,
+}
+
+// ---------------------------------------------------------------------------------
+// Domain form, checked.
+// ---------------------------------------------------------------------------------
+
+/// A checked campaign, ready to run.
+#[derive(Debug, Clone)]
+pub struct Campaign {
+    pub name: String,
+    pub seed: u64,
+    pub kt: f64,
+    pub system: System,
+    /// Start configurations `[m, dim]`.
+    pub start: Array,
+    pub explore: Vec<Stage>,
+    pub dedup: Stage,
+    pub retrain: Option<Stage>,
+    pub evaluate: Option<Stage>,
+    pub stop: StopRules,
+    pub executor: ExecutorSpec,
+    /// The campaign file's text, exactly as read.
+    pub source: String,
+    /// SHA-256 of `source`, hex.
+    pub source_hash: String,
+    /// Directory that relative paths in the file are resolved against.
+    pub base_dir: PathBuf,
+}
+
+/// The system definition: the `[system]` table, handed to workers unchanged.
+#[derive(Debug, Clone)]
+pub struct System {
+    pub table: serde_json::Value,
+    pub dim: usize,
+    /// A short description for the plan, e.g. `muller-brown (dim 2)`.
+    pub label: String,
+}
+
+/// How a stage's worker is started.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Worker {
+    /// `tarn work KIND`, re-invoked from this binary.
+    Builtin(String),
+    /// The user's own program, as an argument array (never through a shell).
+    Command(Vec<String>),
+}
+
+impl Worker {
+    /// The kind name for a built-in worker.
+    pub fn kind(&self) -> Option<&str> {
+        match self {
+            Worker::Builtin(k) => Some(k),
+            Worker::Command(_) => None,
+        }
+    }
+}
+
+/// Where an explore walker starts in rounds after the first.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Restart {
+    /// From the catalogue's states, walker w at state w mod k (the default).
+    States,
+    /// From the walker's own last sample of the previous round.
+    Last,
+    /// From the campaign's start configurations every round.
+    Start,
+}
+
+/// One stage of a round.
+#[derive(Debug, Clone)]
+pub struct Stage {
+    pub name: String,
+    pub role: Role,
+    pub worker: Worker,
+    pub walkers: u32,
+    pub restart: Restart,
+    pub timeout: Option<Duration>,
+    /// Retrain only: the largest training set handed to the worker (most recent kept
+    /// samples first).
+    pub pool_limit: u64,
+    pub params: serde_json::Value,
+}
+
+/// Rules that end a campaign; the first that holds ends it.
+#[derive(Debug, Clone, PartialEq)]
+pub struct StopRules {
+    pub max_rounds: u32,
+    pub max_energy_evals: Option<u64>,
+    pub max_wall_seconds: Option<f64>,
+    pub expected_states: Option<u32>,
+    pub quiet_rounds: Option<u32>,
+}
+
+/// Delay growth between attempts of a failed task.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum Backoff {
+    Fixed,
+    Exponential,
+}
+
+/// The retry policy: data, validated, turned into delays by [`RetryPolicy::delay`].
+#[derive(Debug, Clone, PartialEq)]
+pub struct RetryPolicy {
+    /// Total attempts of a task, including the first.
+    pub attempts: u32,
+    pub backoff: Backoff,
+    pub initial: Duration,
+    pub max: Duration,
+    /// Relative jitter in [0, 1): the delay is scaled by a seeded factor in [1-j, 1+j].
+    pub jitter: f64,
+}
+
+impl RetryPolicy {
+    /// The delay before attempt `next_attempt` (2 for the first retry), jittered by a
+    /// factor drawn from `seed` so that the schedule is reproducible.
+    pub fn delay(&self, next_attempt: u32, seed: u64) -> Duration {
+        let n = next_attempt.saturating_sub(2);
+        let base = match self.backoff {
+            Backoff::Fixed => self.initial.as_secs_f64(),
+            Backoff::Exponential => self.initial.as_secs_f64() * 2f64.powi(n.min(60) as i32),
+        };
+        let capped = base.min(self.max.as_secs_f64());
+        let unit = (splitmix(seed ^ u64::from(next_attempt)) >> 11) as f64 / (1u64 << 53) as f64;
+        let factor = 1.0 + self.jitter * (2.0 * unit - 1.0);
+        Duration::from_secs_f64((capped * factor).max(0.0))
+    }
+}
+
+fn splitmix(mut z: u64) -> u64 {
+    z = z.wrapping_add(0x9E37_79B9_7F4A_7C15);
+    z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
+    z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
+    z ^ (z >> 31)
+}
+
+/// Which task directories survive their task.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum KeepDirs {
+    None,
+    Failed,
+    All,
+}
+
+/// How and where tasks run.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ExecutorSpec {
+    pub kind: String,
+    pub max_parallel: u32,
+    pub timeout: Duration,
+    pub threads_per_task: u32,
+    pub keep_task_dirs: KeepDirs,
+    pub retry: RetryPolicy,
+}
+
+impl Campaign {
+    /// Every stage in run order: explore stages, dedup, retrain, evaluate.
+    pub fn stages(&self) -> Vec<&Stage> {
+        let mut v: Vec<&Stage> = self.explore.iter().collect();
+        v.push(&self.dedup);
+        v.extend(self.retrain.iter());
+        v.extend(self.evaluate.iter());
+        v
+    }
+
+    /// Reads and checks a campaign file.
+    pub fn load(path: &Path) -> Result<Campaign, SpecError> {
+        let shown = path.display().to_string();
+        let source = std::fs::read_to_string(path)
+            .map_err(|e| SpecError::whole_file(&shown, format!("cannot read the campaign file: {e}")))?;
+        let base = path
+            .canonicalize()
+            .ok()
+            .and_then(|p| p.parent().map(Path::to_path_buf))
+            .unwrap_or_else(|| PathBuf::from("."));
+        Campaign::parse(&shown, &source, &base)
+    }
+
+    /// Parses and checks campaign text; `file` is only used in messages and `base_dir`
+    /// resolves relative paths.
+    pub fn parse(file: &str, source: &str, base_dir: &Path) -> Result<Campaign, SpecError> {
+        let doc = toml_edit::ImDocument::parse(source.to_string()).map_err(|e| {
+            SpecError::at(file, source, "", e.span(), syntax_message(e.message()))
+        })?;
+        let de = toml::Deserializer::new(source);
+        let raw: RawCampaign = serde_path_to_error::deserialize(de).map_err(|e| {
+            let path = tidy_path(&e.path().to_string());
+            let inner = e.into_inner();
+            let span = inner.span().or_else(|| span_of(&doc, &path));
+            SpecError::at(file, source, &path, span, serde_message(inner.message()))
+        })?;
+        let ctx = Ctx { file, source, doc: &doc };
+        Campaign::from_raw(raw, &ctx, source, base_dir)
+    }
+
+    fn from_raw(raw: RawCampaign, ctx: &Ctx, source: &str, base_dir: &Path) -> Result<Campaign, SpecError> {
+        check_name(ctx, "name", &raw.name)?;
+        if !(raw.kt.is_finite() && raw.kt > 0.0) {
+            return Err(ctx.err("kT", "must be a positive number (the temperature in the system's energy unit)"));
+        }
+        let system = check_system(ctx, &raw.system)?;
+        let start = check_start(ctx, &raw.start, system.dim, base_dir)?;
+        let mut names = BTreeSet::new();
+        if raw.explore.is_empty() {
+            return Err(ctx.err("explore", "at least one [[explore]] stage is required"));
+        }
+        let mut explore = Vec::new();
+        for (i, st) in raw.explore.into_iter().enumerate() {
+            let stage = check_stage(ctx, &format!("explore[{i}]"), Role::Explore, st, &mut names)?;
+            explore.push(stage);
+        }
+        let dedup = check_stage(ctx, "dedup", Role::Dedup, raw.dedup, &mut names)?;
+        let retrain = raw
+            .retrain
+            .map(|s| check_stage(ctx, "retrain", Role::Retrain, s, &mut names))
+            .transpose()?;
+        let evaluate = raw
+            .evaluate
+            .map(|s| check_stage(ctx, "evaluate", Role::Evaluate, s, &mut names))
+            .transpose()?;
+        let stop = check_stop(ctx, raw.stop)?;
+        let executor = check_executor(ctx, raw.executor)?;
+        let uses_model = explore
+            .iter()
+            .any(|s| matches!(s.worker.kind(), Some("latent-metropolis" | "generate")));
+        if uses_model && retrain.is_none() {
+            return Err(ctx.err(
+                "explore",
+                "a latent-metropolis or generate stage needs a flow: add a [retrain] stage",
+            ));
+        }
+        Ok(Campaign {
+            name: raw.name,
+            seed: raw.seed,
+            kt: raw.kt,
+            system,
+            start,
+            explore,
+            dedup,
+            retrain,
+            evaluate,
+            stop,
+            executor,
+            source: source.to_string(),
+            source_hash: hash_text(source),
+            base_dir: base_dir.to_path_buf(),
+        })
+    }
+}
+
+/// SHA-256 of a text, as lowercase hex.
+pub fn hash_text(text: &str) -> String {
+    hex::encode(Sha256::digest(text.as_bytes()))
+}
+
+/// What validation needs to point at the file.
+struct Ctx<'a> {
+    file: &'a str,
+    source: &'a str,
+    doc: &'a toml_edit::ImDocument<String>,
+}
+
+impl Ctx<'_> {
+    fn err(&self, path: &str, message: impl Into<String>) -> SpecError {
+        SpecError::at(self.file, self.source, path, span_of(self.doc, path), message)
+    }
+}
+
+fn syntax_message(m: &str) -> String {
+    let first = m.lines().next().unwrap_or(m).trim();
+    format!("TOML syntax error: {first}")
+}
+
+fn serde_message(m: &str) -> String {
+    m.lines().next().unwrap_or(m).trim().to_string()
+}
+
+/// serde_path_to_error prints `explore[0].params`; an empty path prints `.`.
+fn tidy_path(p: &str) -> String {
+    if p == "." {
+        String::new()
+    } else {
+        p.to_string()
+    }
+}
+
+/// Finds the span of the value at a key path such as `explore[1].walkers`; falls back to
+/// the nearest existing parent.
+fn span_of(doc: &toml_edit::ImDocument<String>, path: &str) -> Option<Range<usize>> {
+    let mut item: &toml_edit::Item = doc.as_item();
+    let mut best = None;
+    for seg in path_segments(path) {
+        let next = match seg {
+            Seg::Key(k) => item.get(k),
+            Seg::Index(i) => item.get(i),
+        };
+        match next {
+            Some(n) => {
+                item = n;
+                if let Some(s) = item_span(item) {
+                    best = Some(s);
+                }
+            }
+            None => break,
+        }
+    }
+    best
+}
+
+fn item_span(item: &toml_edit::Item) -> Option<Range<usize>> {
+    match item {
+        toml_edit::Item::Value(v) => v.span(),
+        toml_edit::Item::Table(t) => t.span(),
+        toml_edit::Item::ArrayOfTables(a) => a.span(),
+        toml_edit::Item::None => None,
+    }
+}
+
+enum Seg<'a> {
+    Key(&'a str),
+    Index(usize),
+}
+
+fn path_segments(path: &str) -> Vec<Seg<'_>> {
+    let mut out = Vec::new();
+    for part in path.split('.').filter(|p| !p.is_empty()) {
+        let (key, rest) = part.split_once('[').map(|(k, r)| (k, Some(r))).unwrap_or((part, None));
+        if !key.is_empty() {
+            out.push(Seg::Key(key));
+        }
+        if let Some(rest) = rest {
+            for idx in rest.split('[') {
+                if let Ok(i) = idx.trim_end_matches(']').parse() {
+                    out.push(Seg::Index(i));
+                }
+            }
+        }
+    }
+    out
+}
+
+fn check_name(ctx: &Ctx, path: &str, name: &str) -> Result<(), SpecError> {
+    let ok = !name.is_empty()
+        && name.len() <= 64
+        && name.chars().all(|c| c.is_ascii_alphanumeric() || c == '-' || c == '_')
+        && name.chars().next().is_some_and(|c| c.is_ascii_alphanumeric());
+    if ok {
+        Ok(())
+    } else {
+        Err(ctx.err(
+            path,
+            format!("'{name}' is not a valid name: use 1 to 64 letters, digits, '-' or '_', starting with a letter or digit"),
+        ))
+    }
+}
+
+fn check_system(ctx: &Ctx, table: &toml::Table) -> Result<System, SpecError> {
+    let json = toml_to_json(table);
+    let spec: crate::physics::models::SystemSpec = serde_json::from_value(json.clone())
+        .map_err(|e| ctx.err("system", format!("{e}")))?;
+    spec.validate().map_err(|e| ctx.err("system", e.to_string()))?;
+    let dim = spec.dim();
+    let model = table.get("model").and_then(|v| v.as_str()).unwrap_or("?");
+    Ok(System {
+        table: json,
+        dim,
+        label: format!("{model} (dim {dim})"),
+    })
+}
+
+fn check_start(ctx: &Ctx, start: &RawStart, dim: usize, base: &Path) -> Result<Array, SpecError> {
+    match (&start.points, &start.file) {
+        (Some(_), Some(_)) => Err(ctx.err("start", "give either 'points' or 'file', not both")),
+        (None, None) => Err(ctx.err("start", "give the start configurations as 'points' or as a .npy 'file'")),
+        (Some(points), None) => {
+            if points.is_empty() {
+                return Err(ctx.err("start.points", "needs at least one configuration"));
+            }
+            let mut data = Vec::with_capacity(points.len() * dim);
+            for (i, p) in points.iter().enumerate() {
+                if p.len() != dim {
+                    return Err(ctx.err(
+                        &format!("start.points[{i}]"),
+                        format!("has {} coordinates, but the system has dimension {dim}", p.len()),
+                    ));
+                }
+                if p.iter().any(|v| !v.is_finite()) {
+                    return Err(ctx.err(&format!("start.points[{i}]"), "holds a non-finite value"));
+                }
+                data.extend_from_slice(p);
+            }
+            Ok(Array::matrix(points.len(), dim, data))
+        }
+        (None, Some(file)) => {
+            let path = base.join(file);
+            let a = npy::read_file(&path, crate::protocol::MAX_ARRAY_BYTES)
+                .map_err(|m| ctx.err("start.file", format!("{}: {m}", path.display())))?;
+            let a = if a.shape.len() == 1 && a.shape[0] == dim {
+                Array::matrix(1, dim, a.data)
+            } else {
+                a
+            };
+            if a.shape.len() != 2 || a.shape[1] != dim || a.shape[0] == 0 {
+                return Err(ctx.err(
+                    "start.file",
+                    format!("{}: array has shape {:?}, expected [m, {dim}] with m >= 1", path.display(), a.shape),
+                ));
+            }
+            if a.data.iter().any(|v| !v.is_finite()) {
+                return Err(ctx.err("start.file", format!("{}: holds a non-finite value", path.display())));
+            }
+            Ok(a)
+        }
+    }
+}
+
+fn check_stage(ctx: &Ctx, path: &str, role: Role, raw: RawStage, names: &mut BTreeSet<String>) -> Result<Stage, SpecError> {
+    let name = raw.name.clone().unwrap_or_else(|| role.as_str().to_string());
+    check_name(ctx, &format!("{path}.name"), &name)?;
+    if !names.insert(name.clone()) {
+        return Err(ctx.err(&format!("{path}.name"), format!("stage name '{name}' is used twice; give each stage its own name")));
+    }
+    let worker = match (raw.kind, raw.command) {
+        (Some(_), Some(_)) => return Err(ctx.err(path, "give either 'kind' (a built-in worker) or 'command' (your own), not both")),
+        (None, None) => return Err(ctx.err(path, format!("needs 'kind' (a built-in worker: {}) or 'command' (an argument array)", kinds_of(role).join(", ")))),
+        (Some(kind), None) => {
+            if !kinds_of(role).contains(&kind.as_str()) {
+                return Err(ctx.err(
+                    &format!("{path}.kind"),
+                    format!("'{kind}' is not a built-in {role} kind (choose one of: {})", kinds_of(role).join(", ")),
+                ));
+            }
+            Worker::Builtin(kind)
+        }
+        (None, Some(cmd)) => {
+            if cmd.is_empty() || cmd[0].is_empty() {
+                return Err(ctx.err(&format!("{path}.command"), "must name a program: [\"program\", \"arg\", ...]"));
+            }
+            Worker::Command(cmd)
+        }
+    };
+    let walkers = match (role, raw.walkers) {
+        (Role::Explore, None) => 1,
+        (Role::Explore, Some(0)) => return Err(ctx.err(&format!("{path}.walkers"), "must be at least 1")),
+        (Role::Explore, Some(w)) if w > 10_000 => return Err(ctx.err(&format!("{path}.walkers"), "must be at most 10000")),
+        (Role::Explore, Some(w)) => w,
+        (_, None) => 1,
+        (_, Some(_)) => return Err(ctx.err(&format!("{path}.walkers"), format!("only explore stages have walkers; a {role} stage runs as one task"))),
+    };
+    let restart = match (role, raw.restart.as_deref()) {
+        (Role::Explore, None | Some("states")) => Restart::States,
+        (Role::Explore, Some("last")) => Restart::Last,
+        (Role::Explore, Some("start")) => Restart::Start,
+        (Role::Explore, Some(other)) => return Err(ctx.err(&format!("{path}.restart"), format!("'{other}' is not one of: states, last, start"))),
+        (_, None) => Restart::Start,
+        (_, Some(_)) => return Err(ctx.err(&format!("{path}.restart"), "only explore stages have a restart rule")),
+    };
+    let pool_limit = match (role, raw.pool_limit) {
+        (Role::Retrain, None) => 50_000,
+        (Role::Retrain, Some(0)) => return Err(ctx.err(&format!("{path}.pool_limit"), "must be at least 1")),
+        (Role::Retrain, Some(n)) => n,
+        (_, None) => 0,
+        (_, Some(_)) => return Err(ctx.err(&format!("{path}.pool_limit"), "only the retrain stage has a pool_limit")),
+    };
+    let timeout = raw
+        .timeout_seconds
+        .map(|t| positive_seconds(ctx, &format!("{path}.timeout_seconds"), t))
+        .transpose()?;
+    Ok(Stage {
+        name,
+        role,
+        worker,
+        walkers,
+        restart,
+        timeout,
+        pool_limit,
+        params: toml_to_json(&raw.params),
+    })
+}
+
+/// The built-in kinds that can fill `role`.
+pub fn kinds_of(role: Role) -> Vec<&'static str> {
+    BUILTIN_KINDS.iter().filter(|(r, _, _)| *r == role).map(|(_, k, _)| *k).collect()
+}
+
+fn positive_seconds(ctx: &Ctx, path: &str, t: f64) -> Result<Duration, SpecError> {
+    if t.is_finite() && t > 0.0 && t < 1e9 {
+        Ok(Duration::from_secs_f64(t))
+    } else {
+        Err(ctx.err(path, "must be a positive number of seconds"))
+    }
+}
+
+fn check_stop(ctx: &Ctx, raw: RawStop) -> Result<StopRules, SpecError> {
+    let max_rounds = raw.max_rounds.unwrap_or(10);
+    if max_rounds == 0 {
+        return Err(ctx.err("stop.max_rounds", "must be at least 1"));
+    }
+    if max_rounds > 1_000_000 {
+        return Err(ctx.err("stop.max_rounds", "must be at most 1000000"));
+    }
+    if let Some(t) = raw.max_wall_seconds {
+        positive_seconds(ctx, "stop.max_wall_seconds", t)?;
+    }
+    if raw.expected_states == Some(0) {
+        return Err(ctx.err("stop.expected_states", "must be at least 1"));
+    }
+    if raw.quiet_rounds == Some(0) {
+        return Err(ctx.err("stop.quiet_rounds", "must be at least 1"));
+    }
+    Ok(StopRules {
+        max_rounds,
+        max_energy_evals: raw.max_energy_evals,
+        max_wall_seconds: raw.max_wall_seconds,
+        expected_states: raw.expected_states,
+        quiet_rounds: raw.quiet_rounds,
+    })
+}
+
+fn check_executor(ctx: &Ctx, raw: RawExecutor) -> Result<ExecutorSpec, SpecError> {
+    let kind = raw.kind.unwrap_or_else(|| "local".into());
+    if kind != "local" {
+        return Err(ctx.err("executor.kind", format!("'{kind}' is not an executor this build knows (choose: local)")));
+    }
+    let max_parallel = raw.max_parallel.unwrap_or(2);
+    if max_parallel == 0 || max_parallel > 1024 {
+        return Err(ctx.err("executor.max_parallel", "must be between 1 and 1024"));
+    }
+    let timeout = positive_seconds(ctx, "executor.timeout_seconds", raw.timeout_seconds.unwrap_or(3600.0))?;
+    let threads_per_task = raw.threads_per_task.unwrap_or(1);
+    if threads_per_task == 0 || threads_per_task > 256 {
+        return Err(ctx.err("executor.threads_per_task", "must be between 1 and 256"));
+    }
+    let keep_task_dirs = match raw.keep_task_dirs.as_deref() {
+        None | Some("failed") => KeepDirs::Failed,
+        Some("none") => KeepDirs::None,
+        Some("all") => KeepDirs::All,
+        Some(o) => return Err(ctx.err("executor.keep_task_dirs", format!("'{o}' is not one of: none, failed, all"))),
+    };
+    let r = raw.retry;
+    let attempts = r.attempts.unwrap_or(3);
+    if attempts == 0 || attempts > 100 {
+        return Err(ctx.err("executor.retry.attempts", "must be between 1 and 100 (the first attempt counts)"));
+    }
+    let backoff = match r.backoff.as_deref() {
+        None | Some("exponential") => Backoff::Exponential,
+        Some("fixed") => Backoff::Fixed,
+        Some(o) => return Err(ctx.err("executor.retry.backoff", format!("'{o}' is not one of: exponential, fixed"))),
+    };
+    let initial = r.initial_seconds.unwrap_or(1.0);
+    if !(initial.is_finite() && (0.0..1e6).contains(&initial)) {
+        return Err(ctx.err("executor.retry.initial_seconds", "must be a number of seconds, 0 or more"));
+    }
+    let max = r.max_seconds.unwrap_or(60.0);
+    if !(max.is_finite() && max >= initial && max < 1e7) {
+        return Err(ctx.err("executor.retry.max_seconds", "must be at least initial_seconds"));
+    }
+    let jitter = r.jitter.unwrap_or(0.1);
+    if !(0.0..1.0).contains(&jitter) {
+        return Err(ctx.err("executor.retry.jitter", "must be in [0, 1)"));
+    }
+    Ok(ExecutorSpec {
+        kind,
+        max_parallel,
+        timeout,
+        threads_per_task,
+        keep_task_dirs,
+        retry: RetryPolicy {
+            attempts,
+            backoff,
+            initial: Duration::from_secs_f64(initial),
+            max: Duration::from_secs_f64(max),
+            jitter,
+        },
+    })
+}
+
+/// Converts a TOML table to JSON for `task.json` (TOML datetimes become strings).
+pub fn toml_to_json(t: &toml::Table) -> serde_json::Value {
+    fn conv(v: &toml::Value) -> serde_json::Value {
+        match v {
+            toml::Value::String(s) => serde_json::Value::String(s.clone()),
+            toml::Value::Integer(i) => serde_json::Value::from(*i),
+            toml::Value::Float(f) => serde_json::Number::from_f64(*f)
+                .map(serde_json::Value::Number)
+                .unwrap_or(serde_json::Value::Null),
+            toml::Value::Boolean(b) => serde_json::Value::Bool(*b),
+            toml::Value::Datetime(d) => serde_json::Value::String(d.to_string()),
+            toml::Value::Array(a) => serde_json::Value::Array(a.iter().map(conv).collect()),
+            toml::Value::Table(t) => {
+                serde_json::Value::Object(t.iter().map(|(k, v)| (k.clone(), conv(v))).collect())
+            }
+        }
+    }
+    serde_json::Value::Object(t.iter().map(|(k, v)| (k.clone(), conv(v))).collect())
+}
+
+#[cfg(test)]
+mod tests;

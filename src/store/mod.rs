@@ -1,0 +1,549 @@
+//! The campaign store: one sled database per campaign, under `STATE/NAME/db`.
+//!
+//! Owns: keys, values, atomic batches, schema checks, and the publication of the status
+//! snapshot file. Must not touch: processes, the worker protocol's files, the terminal.
+//!
+//! # Layout
+//! One sled tree; every key starts with a one-byte prefix and continues big-endian, so
+//! that iteration follows round order:
+//!
+//! | prefix | key | value |
+//! | --- | --- | --- |
+//! | `m` | `schema` / `meta` / `finished` | versioned JSON |
+//! | `c` | version u32 | [`CampaignVersion`] |
+//! | `e` | seq u64 | [`EventRecord`] |
+//! | `r` | round u32 | [`RoundRecord`] |
+//! | `t` | round u32, stage u16, walker u32 | [`TaskRecord`] |
+//! | `a` | task key (10 bytes), name, 0, chunk u32 | blob: version byte, then bytes |
+//! | `s` | state id u32 | [`StateRecord`] |
+//! | `n` | round u32 | [`ModelRecord`] (bytes under the retrain task's `a` keys) |
+//!
+//! Arrays are stored as `.npy` bytes cut into chunks of [`CHUNK`] bytes: a few large
+//! values per task, not a key per sample. A task's outputs, its record, the states it
+//! changes and its event go into one [`sled::Batch`], applied atomically and flushed
+//! before the task counts as done.
+
+pub mod records;
+
+use std::path::{Path, PathBuf};
+use std::time::{SystemTime, UNIX_EPOCH};
+
+use serde::de::DeserializeOwned;
+use serde::Serialize;
+use sha2::{Digest, Sha256};
+
+pub use records::*;
+
+use crate::protocol::{npy, Array};
+
+/// Size of one array chunk in the store.
+pub const CHUNK: usize = 4 << 20;
+
+/// sled's page cache cap. Its default (1 GiB) would let a long campaign's resident
+/// memory grow with the store; 64 MiB keeps the engine small and is plenty for the
+/// access pattern (a round's arrays are read once).
+pub const CACHE_BYTES: u64 = 64 << 20;
+
+/// Why the store could not do what was asked.
+#[derive(Debug, thiserror::Error)]
+pub enum StoreError {
+    #[error("store {path}: {source}")]
+    Sled { path: String, source: sled::Error },
+    #[error("store {path} is in use by another tarn process{holder}")]
+    Locked { path: String, holder: String },
+    #[error("store {path} has schema version {found}, but this tarn reads version {SCHEMA_VERSION}; use the tarn that wrote it")]
+    Schema { path: String, found: u32 },
+    #[error("store {path}: record {key} is unreadable ({detail}); the store may be damaged — it was not changed")]
+    Corrupt { path: String, key: String, detail: String },
+    #[error("store {path} does not exist")]
+    Missing { path: String },
+}
+
+/// An open campaign store.
+pub struct Store {
+    db: sled::Db,
+    dir: PathBuf,
+    next_seq: std::sync::atomic::AtomicU64,
+    host: String,
+}
+
+/// Key builders; see the layout table in the module doc.
+pub mod keys {
+    pub fn round(r: u32) -> Vec<u8> {
+        let mut k = vec![b'r'];
+        k.extend_from_slice(&r.to_be_bytes());
+        k
+    }
+    pub fn task_suffix(r: u32, stage: u16, walker: u32) -> [u8; 10] {
+        let mut k = [0u8; 10];
+        k[..4].copy_from_slice(&r.to_be_bytes());
+        k[4..6].copy_from_slice(&stage.to_be_bytes());
+        k[6..].copy_from_slice(&walker.to_be_bytes());
+        k
+    }
+    pub fn task(r: u32, stage: u16, walker: u32) -> Vec<u8> {
+        let mut k = vec![b't'];
+        k.extend_from_slice(&task_suffix(r, stage, walker));
+        k
+    }
+    pub fn round_tasks(r: u32) -> Vec<u8> {
+        let mut k = vec![b't'];
+        k.extend_from_slice(&r.to_be_bytes());
+        k
+    }
+    pub fn array_prefix(task: &[u8; 10], name: &str) -> Vec<u8> {
+        let mut k = vec![b'a'];
+        k.extend_from_slice(task);
+        k.extend_from_slice(name.as_bytes());
+        k.push(0);
+        k
+    }
+    pub fn state(id: u32) -> Vec<u8> {
+        let mut k = vec![b's'];
+        k.extend_from_slice(&id.to_be_bytes());
+        k
+    }
+    pub fn model(r: u32) -> Vec<u8> {
+        let mut k = vec![b'n'];
+        k.extend_from_slice(&r.to_be_bytes());
+        k
+    }
+    pub fn event(seq: u64) -> Vec<u8> {
+        let mut k = vec![b'e'];
+        k.extend_from_slice(&seq.to_be_bytes());
+        k
+    }
+    pub fn campaign(i: u32) -> Vec<u8> {
+        let mut k = vec![b'c'];
+        k.extend_from_slice(&i.to_be_bytes());
+        k
+    }
+}
+
+/// Seconds since the Unix epoch.
+pub fn now_unix() -> f64 {
+    SystemTime::now()
+        .duration_since(UNIX_EPOCH)
+        .map(|d| d.as_secs_f64())
+        .unwrap_or(0.0)
+}
+
+/// This machine's host name.
+pub fn host_name() -> String {
+    nix::unistd::gethostname()
+        .ok()
+        .and_then(|h| h.into_string().ok())
+        .unwrap_or_else(|| "unknown".into())
+}
+
+/// A set of writes applied atomically by [`Store::apply`].
+#[derive(Default)]
+pub struct Batch {
+    inner: sled::Batch,
+    events: Vec<(String, String)>,
+}
+
+impl Batch {
+    /// Puts a versioned record.
+    pub fn put<T: Serialize>(&mut self, key: Vec<u8>, value: &T) {
+        let bytes = serde_json::to_vec(value).expect("records serialize");
+        self.inner.insert(key, bytes);
+    }
+
+    /// Puts an array under a task, as chunked `.npy` bytes.
+    pub fn put_array(&mut self, task: &[u8; 10], name: &str, array: &Array) {
+        self.put_blob(task, name, &npy::encode_f64(array));
+    }
+
+    /// Puts raw bytes under a task, chunked, each chunk led by the schema version byte.
+    pub fn put_blob(&mut self, task: &[u8; 10], name: &str, bytes: &[u8]) {
+        let prefix = keys::array_prefix(task, name);
+        for (i, chunk) in bytes.chunks(CHUNK).enumerate() {
+            let mut k = prefix.clone();
+            k.extend_from_slice(&(i as u32).to_be_bytes());
+            let mut v = Vec::with_capacity(chunk.len() + 1);
+            v.push(SCHEMA_VERSION as u8);
+            v.extend_from_slice(chunk);
+            self.inner.insert(k, v);
+        }
+        if bytes.is_empty() {
+            let mut k = prefix;
+            k.extend_from_slice(&0u32.to_be_bytes());
+            self.inner.insert(k, vec![SCHEMA_VERSION as u8]);
+        }
+    }
+
+    /// Appends an event to the log in the same atomic write.
+    pub fn event(&mut self, kind: &str, message: impl Into<String>) {
+        self.events.push((kind.to_string(), message.into()));
+    }
+}
+
+impl Store {
+    /// The database directory inside a campaign directory.
+    fn db_path(dir: &Path) -> PathBuf {
+        dir.join("db")
+    }
+
+    /// Whether a campaign directory holds a store.
+    pub fn exists(dir: &Path) -> bool {
+        Store::db_path(dir).join("conf").exists() || Store::db_path(dir).join("db").exists()
+    }
+
+    fn open_db(dir: &Path) -> Result<sled::Db, StoreError> {
+        let path = Store::db_path(dir);
+        sled::Config::new()
+            .path(&path)
+            .cache_capacity(CACHE_BYTES)
+            .mode(sled::Mode::LowSpace)
+            .open()
+            .map_err(|e| match e {
+                sled::Error::Io(ref io) if io.kind() == std::io::ErrorKind::WouldBlock || io.to_string().contains("lock") => {
+                    StoreError::Locked {
+                        path: path.display().to_string(),
+                        holder: crate::engine::snapshot::holder_text(dir),
+                    }
+                }
+                other => StoreError::Sled {
+                    path: path.display().to_string(),
+                    source: other,
+                },
+            })
+    }
+
+    /// Creates a new store for a campaign; fails if one exists.
+    pub fn create(dir: &Path, meta: &Meta, first: &CampaignVersion) -> Result<Store, StoreError> {
+        std::fs::create_dir_all(dir).map_err(|e| StoreError::Sled {
+            path: dir.display().to_string(),
+            source: sled::Error::Io(e),
+        })?;
+        let db = Store::open_db(dir)?;
+        let store = Store::wrap(db, dir)?;
+        let mut b = Batch::default();
+        b.inner.insert(b"mschema".to_vec(), SCHEMA_VERSION.to_be_bytes().to_vec());
+        b.put(b"mmeta".to_vec(), meta);
+        b.put(keys::campaign(0), first);
+        b.event("created", format!("campaign {} created (file hash {})", meta.campaign, &first.hash[..12]));
+        store.apply(b)?;
+        Ok(store)
+    }
+
+    /// Opens an existing store, refusing one of another schema version.
+    pub fn open(dir: &Path) -> Result<Store, StoreError> {
+        if !Store::exists(dir) {
+            return Err(StoreError::Missing {
+                path: dir.display().to_string(),
+            });
+        }
+        let db = Store::open_db(dir)?;
+        let path = dir.display().to_string();
+        let schema = db
+            .get(b"mschema")
+            .map_err(|e| StoreError::Sled { path: path.clone(), source: e })?
+            .ok_or_else(|| StoreError::Corrupt {
+                path: path.clone(),
+                key: "schema".into(),
+                detail: "missing".into(),
+            })?;
+        let found = <[u8; 4]>::try_from(schema.as_ref())
+            .map(u32::from_be_bytes)
+            .map_err(|_| StoreError::Corrupt {
+                path: path.clone(),
+                key: "schema".into(),
+                detail: "not a version number".into(),
+            })?;
+        if found != SCHEMA_VERSION {
+            return Err(StoreError::Schema { path, found });
+        }
+        Store::wrap(db, dir)
+    }
+
+    fn wrap(db: sled::Db, dir: &Path) -> Result<Store, StoreError> {
+        let last = db
+            .scan_prefix(b"e")
+            .keys()
+            .next_back()
+            .transpose()
+            .map_err(|e| StoreError::Sled {
+                path: dir.display().to_string(),
+                source: e,
+            })?;
+        let next = last
+            .and_then(|k| <[u8; 8]>::try_from(&k[1..]).ok())
+            .map(|b| u64::from_be_bytes(b) + 1)
+            .unwrap_or(0);
+        Ok(Store {
+            db,
+            dir: dir.to_path_buf(),
+            next_seq: std::sync::atomic::AtomicU64::new(next),
+            host: host_name(),
+        })
+    }
+
+    /// The campaign directory.
+    pub fn dir(&self) -> &Path {
+        &self.dir
+    }
+
+    fn sled_err(&self, e: sled::Error) -> StoreError {
+        StoreError::Sled {
+            path: self.dir.display().to_string(),
+            source: e,
+        }
+    }
+
+    /// Applies a batch atomically and flushes it to disk.
+    pub fn apply(&self, mut batch: Batch) -> Result<(), StoreError> {
+        for (kind, message) in std::mem::take(&mut batch.events) {
+            let seq = self.next_seq.fetch_add(1, std::sync::atomic::Ordering::SeqCst);
+            let ev = EventRecord {
+                v: SCHEMA_VERSION,
+                seq,
+                unix: now_unix(),
+                kind,
+                message,
+                pid: std::process::id(),
+                host: self.host.clone(),
+            };
+            batch.put(keys::event(seq), &ev);
+        }
+        self.db.apply_batch(batch.inner).map_err(|e| self.sled_err(e))?;
+        self.db.flush().map_err(|e| self.sled_err(e))?;
+        Ok(())
+    }
+
+    /// Appends one event on its own.
+    pub fn log_event(&self, kind: &str, message: impl Into<String>) -> Result<(), StoreError> {
+        let mut b = Batch::default();
+        b.event(kind, message);
+        self.apply(b)
+    }
+
+    fn decode<T: DeserializeOwned>(&self, key: &[u8], bytes: &[u8]) -> Result<T, StoreError> {
+        let corrupt = |detail: String| StoreError::Corrupt {
+            path: self.dir.display().to_string(),
+            key: printable_key(key),
+            detail,
+        };
+        let value: serde_json::Value = serde_json::from_slice(bytes).map_err(|e| corrupt(e.to_string()))?;
+        let v = value.get("v").and_then(|v| v.as_u64());
+        if v != Some(u64::from(SCHEMA_VERSION)) {
+            return Err(corrupt(format!("record version {v:?}, expected {SCHEMA_VERSION}")));
+        }
+        serde_json::from_value(value).map_err(|e| corrupt(e.to_string()))
+    }
+
+    /// Reads one record.
+    pub fn get<T: DeserializeOwned>(&self, key: &[u8]) -> Result<Option<T>, StoreError> {
+        match self.db.get(key).map_err(|e| self.sled_err(e))? {
+            Some(bytes) => self.decode(key, &bytes).map(Some),
+            None => Ok(None),
+        }
+    }
+
+    /// Reads every record under a key prefix, in key order.
+    pub fn scan<T: DeserializeOwned>(&self, prefix: &[u8]) -> Result<Vec<T>, StoreError> {
+        let mut out = Vec::new();
+        for kv in self.db.scan_prefix(prefix) {
+            let (k, v) = kv.map_err(|e| self.sled_err(e))?;
+            out.push(self.decode(&k, &v)?);
+        }
+        Ok(out)
+    }
+
+    /// Reads a blob (chunked bytes) stored under a task.
+    pub fn blob(&self, task: &[u8; 10], name: &str) -> Result<Option<Vec<u8>>, StoreError> {
+        let prefix = keys::array_prefix(task, name);
+        let mut out = Vec::new();
+        let mut any = false;
+        for kv in self.db.scan_prefix(&prefix) {
+            let (k, v) = kv.map_err(|e| self.sled_err(e))?;
+            if v.first() != Some(&(SCHEMA_VERSION as u8)) {
+                return Err(StoreError::Corrupt {
+                    path: self.dir.display().to_string(),
+                    key: printable_key(&k),
+                    detail: "blob chunk of unknown version".into(),
+                });
+            }
+            out.extend_from_slice(&v[1..]);
+            any = true;
+        }
+        Ok(any.then_some(out))
+    }
+
+    /// Reads an array stored under a task.
+    pub fn array(&self, task: &[u8; 10], name: &str) -> Result<Option<Array>, StoreError> {
+        match self.blob(task, name)? {
+            Some(bytes) => npy::decode(&bytes).map(Some).map_err(|e| StoreError::Corrupt {
+                path: self.dir.display().to_string(),
+                key: format!("array {name}"),
+                detail: e.to_string(),
+            }),
+            None => Ok(None),
+        }
+    }
+
+    /// The store's creation facts.
+    pub fn meta(&self) -> Result<Meta, StoreError> {
+        self.get(b"mmeta")?.ok_or_else(|| StoreError::Corrupt {
+            path: self.dir.display().to_string(),
+            key: "meta".into(),
+            detail: "missing".into(),
+        })
+    }
+
+    /// Every accepted version of the campaign file, oldest first.
+    pub fn campaign_versions(&self) -> Result<Vec<CampaignVersion>, StoreError> {
+        self.scan(b"c")
+    }
+
+    /// The campaign file text the campaign now runs with.
+    pub fn current_campaign(&self) -> Result<CampaignVersion, StoreError> {
+        self.campaign_versions()?.pop().ok_or_else(|| StoreError::Corrupt {
+            path: self.dir.display().to_string(),
+            key: "campaign".into(),
+            detail: "no campaign file stored".into(),
+        })
+    }
+
+    pub fn task(&self, r: u32, stage: u16, walker: u32) -> Result<Option<TaskRecord>, StoreError> {
+        self.get(&keys::task(r, stage, walker))
+    }
+
+    pub fn round_tasks(&self, r: u32) -> Result<Vec<TaskRecord>, StoreError> {
+        self.scan(&keys::round_tasks(r))
+    }
+
+    pub fn all_tasks(&self) -> Result<Vec<TaskRecord>, StoreError> {
+        self.scan(b"t")
+    }
+
+    pub fn round(&self, r: u32) -> Result<Option<RoundRecord>, StoreError> {
+        self.get(&keys::round(r))
+    }
+
+    pub fn rounds(&self) -> Result<Vec<RoundRecord>, StoreError> {
+        self.scan(b"r")
+    }
+
+    /// The last completed round, if any.
+    pub fn last_round(&self) -> Result<Option<RoundRecord>, StoreError> {
+        match self.db.scan_prefix(b"r").next_back() {
+            Some(kv) => {
+                let (k, v) = kv.map_err(|e| self.sled_err(e))?;
+                self.decode(&k, &v).map(Some)
+            }
+            None => Ok(None),
+        }
+    }
+
+    pub fn states(&self) -> Result<Vec<StateRecord>, StoreError> {
+        self.scan(b"s")
+    }
+
+    pub fn models(&self) -> Result<Vec<ModelRecord>, StoreError> {
+        self.scan(b"n")
+    }
+
+    pub fn events(&self) -> Result<Vec<EventRecord>, StoreError> {
+        self.scan(b"e")
+    }
+
+    /// The reason the campaign finished, if it has.
+    pub fn finished(&self) -> Result<Option<StopDecision>, StoreError> {
+        match self.db.get(b"mfinished").map_err(|e| self.sled_err(e))? {
+            Some(bytes) => {
+                let v: serde_json::Value = serde_json::from_slice(&bytes).map_err(|e| StoreError::Corrupt {
+                    path: self.dir.display().to_string(),
+                    key: "finished".into(),
+                    detail: e.to_string(),
+                })?;
+                Ok(v.get("stop").cloned().and_then(|s| serde_json::from_value(s).ok()))
+            }
+            None => Ok(None),
+        }
+    }
+
+    /// Marks (or, with `None`, unmarks) the campaign as finished.
+    pub fn put_finished(b: &mut Batch, stop: Option<&StopDecision>) {
+        match stop {
+            Some(s) => b.put(b"mfinished".to_vec(), &serde_json::json!({"v": SCHEMA_VERSION, "stop": s})),
+            None => b.inner.remove(b"mfinished".to_vec()),
+        }
+    }
+
+    /// Removes a key (used to clear the finished mark when a campaign is extended).
+    pub fn remove_in(b: &mut Batch, key: Vec<u8>) {
+        b.inner.remove(key);
+    }
+
+    /// Size of the database on disk, in bytes.
+    pub fn size_on_disk(&self) -> u64 {
+        self.db.size_on_disk().unwrap_or(0)
+    }
+
+    /// A hash over all scientific content: campaign texts, committed task outputs and
+    /// metrics, the catalogue, round metrics and models — and nothing about time,
+    /// hosts, process ids, durations or attempts. Tasks are visited in key order, so
+    /// the order in which parallel tasks finished cannot change it.
+    pub fn digest(&self) -> Result<String, StoreError> {
+        let mut h = Sha256::new();
+        let mut feed = |label: &str, bytes: &[u8]| {
+            h.update(label.as_bytes());
+            h.update((bytes.len() as u64).to_be_bytes());
+            h.update(bytes);
+        };
+        for c in self.campaign_versions()? {
+            feed("campaign", c.hash.as_bytes());
+        }
+        for t in self.all_tasks()? {
+            if t.status != TaskStatus::Done {
+                continue;
+            }
+            let science = serde_json::json!({
+                "id": t.id, "round": t.round, "stage": t.stage, "role": t.role, "kind": t.kind,
+                "walker": t.walker, "seed": t.seed, "metrics": t.metrics,
+                "energy_evals": t.energy_evals, "arrays": t.arrays, "model": t.model_sha256,
+            });
+            feed("task", science.to_string().as_bytes());
+            let key = keys::task_suffix(t.round, t.stage_index, t.walker);
+            for name in t.arrays.keys() {
+                if let Some(bytes) = self.blob(&key, name)? {
+                    feed(name, &bytes);
+                }
+            }
+        }
+        for s in self.states()? {
+            let science = serde_json::json!({
+                "id": s.id, "energy": s.energy.to_bits(),
+                "representative": s.representative.iter().map(|v| v.to_bits()).collect::<Vec<_>>(),
+                "found": s.found, "sightings": s.sightings,
+                "estimates": s.estimates.iter().map(|e| (e.round, e.free_energy.to_bits(), e.free_energy_err.map(f64::to_bits))).collect::<Vec<_>>(),
+            });
+            feed("state", science.to_string().as_bytes());
+        }
+        for r in self.rounds()? {
+            let stages: Vec<_> = r
+                .stages
+                .iter()
+                .map(|s| serde_json::json!({"name": s.name, "tasks": s.tasks, "samples": s.samples, "energy_evals": s.energy_evals, "metrics": s.metrics}))
+                .collect();
+            let science = serde_json::json!({
+                "round": r.round, "stages": stages, "new_states": r.new_states,
+                "states_total": r.states_total, "energy_evals": r.energy_evals,
+                "stop": r.stop.as_ref().filter(|s| s.rule != "max_wall_seconds").map(|s| &s.rule),
+            });
+            feed("round", science.to_string().as_bytes());
+        }
+        for m in self.models()? {
+            feed("model", format!("{}:{}:{}", m.round, m.task, m.sha256).as_bytes());
+        }
+        Ok(hex::encode(h.finalize()))
+    }
+}
+
+/// A key made readable for messages.
+fn printable_key(key: &[u8]) -> String {
+    let (p, rest) = key.split_first().map(|(p, r)| (*p as char, r)).unwrap_or(('?', &[]));
+    format!("{p}:{}", hex::encode(rest))
+}
