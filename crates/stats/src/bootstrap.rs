@@ -12,16 +12,24 @@ use serde::{Deserialize, Serialize};
 use crate::error::{Result, StatsError};
 
 /// How a confidence interval is made from bootstrap replicates.
+///
+/// Both are calibrated on tarn's double-well check (tests/calibration.rs: over 1000
+/// seeds the nominal 95% interval of ΔF covers the exact value in 95.5% of seeds with
+/// `StandardError` and 94.6% with `Percentile`). `StandardError` is the default
+/// because its interval is exactly the reported error bar times z, so the error bar
+/// and the interval never tell different stories.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum IntervalMethod {
     /// The (1−c)/2 and (1+c)/2 quantiles of the replicate values (linear
-    /// interpolation between order statistics). Invariant under monotone transforms, so
-    /// it follows the skew of −ln P for small populations, and it stays meaningful when
-    /// some replicates are infinite (the upper end becomes +inf). The default.
+    /// interpolation between order statistics, numpy's default). Invariant under
+    /// monotone transforms, so it follows the skew of −ln P for small populations, and
+    /// it stays meaningful when some replicates are infinite (the upper end becomes
+    /// +inf): prefer it for rarely visited states.
     Percentile,
     /// estimate ± z·se with se the replicates' standard deviation and z the standard
     /// normal quantile of (1+c)/2. Undefined (None) when any replicate is infinite.
+    /// The default.
     StandardError,
 }
 
@@ -37,14 +45,15 @@ pub struct BootstrapOptions {
 }
 
 impl Default for BootstrapOptions {
-    /// 400 replicates at 95% with percentile intervals: enough for stable 2.5% and
-    /// 97.5% quantiles (about 10 replicates in each tail) at a cost of 400 passes over
-    /// the samples.
+    /// 400 replicates at 95% with standard-error intervals. 400 replicates make the
+    /// standard error good to about 3.5% (its relative error is about 1/sqrt(2B)) and
+    /// leave about 10 replicates in each 2.5% tail for percentile intervals, at a cost
+    /// of 400 passes over the samples.
     fn default() -> Self {
         Self {
             n_replicates: 400,
             confidence: 0.95,
-            method: IntervalMethod::Percentile,
+            method: IntervalMethod::StandardError,
         }
     }
 }

@@ -281,6 +281,7 @@ mod tests {
     fn opts(n: usize) -> BootstrapOptions {
         BootstrapOptions {
             n_replicates: n,
+            method: crate::IntervalMethod::Percentile,
             ..Default::default()
         }
     }
