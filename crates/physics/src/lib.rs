@@ -15,5 +15,6 @@ pub use error::PhysicsError;
 pub use models::SystemSpec;
 pub mod cv;
 pub mod explore;
+pub mod external;
 pub mod fingerprint;
 pub mod quench;
