@@ -362,13 +362,24 @@ impl Mbar {
     }
 
     /// Runs self-consistent warm-up iterations, then Newton steps with line search.
+    ///
+    /// Gives up early, with [`StatsError::NotConverged`], when the residual has not
+    /// improved for `STAGNATION_LIMIT` iterations: that is the round-off floor of the
+    /// data, and more passes over them would only cost time.
     fn iterate(&mut self, opts: &MbarOptions) -> Result<()> {
+        const STAGNATION_LIMIT: usize = 50;
         let sampled = self.sampled_states();
         let mut eval = self.evaluate(&sampled, false);
+        let (mut best, mut best_at) = (f64::INFINITY, 0usize);
         while self.iterations < opts.max_iterations {
             self.residual = eval.residual;
             if eval.residual <= opts.tolerance {
                 return Ok(());
+            }
+            if eval.residual < best {
+                (best, best_at) = (eval.residual, self.iterations);
+            } else if self.iterations - best_at >= STAGNATION_LIMIT {
+                break;
             }
             self.iterations += 1;
             if self.iterations <= opts.self_consistent_warmup {
@@ -575,6 +586,29 @@ mod tests {
         let m = Mbar::solve(&u, &n, &o).unwrap();
         assert!(m.log_weights(2).is_err());
         assert!(m.expectations(&[1.0]).is_err());
+    }
+
+    #[test]
+    fn unreachable_tolerance_reports_not_converged() {
+        // A tolerance below round-off cannot be met: the solver must stop (stagnation
+        // or the iteration cap) and say so, with the residual it reached.
+        let (u, n) = harmonic(&[1.0, 3.0], 500, 5);
+        let o = MbarOptions {
+            tolerance: 0.0,
+            max_iterations: 200,
+            ..Default::default()
+        };
+        match Mbar::solve(&u, &n, &o) {
+            Err(StatsError::NotConverged {
+                iterations,
+                residual,
+                ..
+            }) => {
+                assert!(iterations <= 200);
+                assert!(residual < 1e-12, "residual {residual}");
+            }
+            other => panic!("expected NotConverged, got {other:?}"),
+        }
     }
 
     #[test]

@@ -108,7 +108,7 @@ pub fn state_free_energies<R: Rng + ?Sized>(
     checked_total(log_w)?;
     let mut groups = SlotTable::new(labels, catalogue);
     let scaled = groups.scaled_weights(log_w);
-    let full = groups.log_slot_weights(&scaled, (0..log_w.len()).map(|i| (i, 1.0)));
+    let full = groups.log_slot_weights(&scaled, 0..log_w.len());
     let reference =
         most_populated(&full[..groups.ids.len()]).ok_or(StatsError::InvalidParameter {
             name: "labels",
@@ -122,7 +122,7 @@ pub fn state_free_energies<R: Rng + ?Sized>(
     let mut indices = vec![0usize; log_w.len()];
     for _ in 0..opts.n_replicates {
         resample_indices(rng, &mut indices);
-        let rep = groups.log_slot_weights(&scaled, indices.iter().map(|&i| (i, 1.0)));
+        let rep = groups.log_slot_weights(&scaled, indices.iter().copied());
         let rep_total = crate::logspace::logsumexp(&rep);
         for s in 0..n_states {
             f_reps[s].push(free_energy_difference(rep[reference], rep[s]));
@@ -249,15 +249,11 @@ impl SlotTable {
             .collect()
     }
 
-    /// Returns ln Σ w per slot over the given (sample, multiplicity) pairs.
-    fn log_slot_weights(
-        &self,
-        scaled: &[f64],
-        draws: impl Iterator<Item = (usize, f64)>,
-    ) -> Vec<f64> {
+    /// Returns ln Σ w per slot over the drawn sample indices (repeats count again).
+    fn log_slot_weights(&self, scaled: &[f64], draws: impl Iterator<Item = usize>) -> Vec<f64> {
         let mut acc = vec![0.0f64; self.ids.len() + 1];
-        for (i, mult) in draws {
-            acc[self.slot_of_sample[i]] += mult * scaled[i];
+        for i in draws {
+            acc[self.slot_of_sample[i]] += scaled[i];
         }
         acc.iter()
             .zip(&self.slot_max)
