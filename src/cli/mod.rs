@@ -42,7 +42,13 @@ where it stood.\n\nStart with `tarn new --list`, then `tarn check FILE` and `tar
 )]
 pub struct Cli {
     /// Directory holding campaign stores (one subdirectory per campaign).
-    #[arg(long, global = true, env = "TARN_STATE", default_value = "state", value_name = "DIR")]
+    #[arg(
+        long,
+        global = true,
+        env = "TARN_STATE",
+        default_value = "state",
+        value_name = "DIR"
+    )]
     pub state: PathBuf,
     #[command(subcommand)]
     pub command: Command,
@@ -137,7 +143,10 @@ pub struct Failure {
 
 impl Failure {
     fn input(m: impl std::fmt::Display) -> Self {
-        Failure { code: EXIT_INPUT, message: m.to_string() }
+        Failure {
+            code: EXIT_INPUT,
+            message: m.to_string(),
+        }
     }
 }
 
@@ -155,7 +164,10 @@ impl From<StoreError> for Failure {
 
 impl From<anyhow::Error> for Failure {
     fn from(e: anyhow::Error) -> Self {
-        Failure { code: EXIT_CAMPAIGN, message: format!("{e:#}") }
+        Failure {
+            code: EXIT_CAMPAIGN,
+            message: format!("{e:#}"),
+        }
     }
 }
 
@@ -177,9 +189,17 @@ pub fn main() -> ExitCode {
 
 fn dispatch(cli: &Cli) -> Result<u8, Failure> {
     match &cli.command {
-        Command::New { template, out, list } => cmd_new(template.as_deref(), out.as_deref(), *list),
+        Command::New {
+            template,
+            out,
+            list,
+        } => cmd_new(template.as_deref(), out.as_deref(), *list),
         Command::Check { file, json } => cmd_check(file, *json),
-        Command::Run { file, accept_change, quiet } => {
+        Command::Run {
+            file,
+            accept_change,
+            quiet,
+        } => {
             let campaign = Campaign::load(file).map_err(Failure::input)?;
             let opts = run_options(cli, *accept_change, *quiet)?;
             prepare_state(&opts.state_dir, &campaign.name)?;
@@ -205,9 +225,15 @@ fn dispatch(cli: &Cli) -> Result<u8, Failure> {
             let store = open_store(&cli.state, name)?;
             let current = store.current_campaign()?;
             let meta = store.meta()?;
-            let c = Campaign::parse(&current.path, &current.text, Path::new(&meta.base_dir)).map_err(Failure::input)?;
+            let c = Campaign::parse(&current.path, &current.text, Path::new(&meta.base_dir))
+                .map_err(Failure::input)?;
             let files = report::export::export(&store, c.system.dim, out)?;
-            println!("wrote {} files to {}: {}", files.len(), out.display(), files.join(", "));
+            println!(
+                "wrote {} files to {}: {}",
+                files.len(),
+                out.display(),
+                files.join(", ")
+            );
             Ok(EXIT_OK)
         }
         Command::Digest { name } => {
@@ -215,20 +241,29 @@ fn dispatch(cli: &Cli) -> Result<u8, Failure> {
             println!("{}", store.digest()?);
             Ok(EXIT_OK)
         }
-        Command::Bench { what, json, tasks } => crate::bench::run(what, *json, *tasks).map_err(|e| Failure::input(format!("{e:#}"))),
+        Command::Bench { what, json, tasks } => {
+            crate::bench::run(what, *json, *tasks).map_err(|e| Failure::input(format!("{e:#}")))
+        }
         Command::Work { .. } => unreachable!("handled in main"),
     }
 }
 
 fn run_options(cli: &Cli, accept_change: bool, quiet: bool) -> Result<RunOptions, Failure> {
-    let exe = std::env::current_exe().map_err(|e| Failure::input(format!("cannot find the tarn binary: {e}")))?;
-    Ok(RunOptions { state_dir: cli.state.clone(), accept_change, quiet, exe })
+    let exe = std::env::current_exe()
+        .map_err(|e| Failure::input(format!("cannot find the tarn binary: {e}")))?;
+    Ok(RunOptions {
+        state_dir: cli.state.clone(),
+        accept_change,
+        quiet,
+        exe,
+    })
 }
 
 /// Creates the campaign directory and starts logging into it.
 fn prepare_state(state: &Path, name: &str) -> Result<(), Failure> {
     let dir = engine::campaign_dir(state, name);
-    std::fs::create_dir_all(&dir).map_err(|e| Failure::input(format!("cannot create {}: {e}", dir.display())))?;
+    std::fs::create_dir_all(&dir)
+        .map_err(|e| Failure::input(format!("cannot create {}: {e}", dir.display())))?;
     init_logging(&dir.join("tarn.log"));
     Ok(())
 }
@@ -236,7 +271,11 @@ fn prepare_state(state: &Path, name: &str) -> Result<(), Failure> {
 fn init_logging(file: &Path) {
     use tracing_subscriber::prelude::*;
     use tracing_subscriber::{fmt, EnvFilter};
-    let Ok(f) = std::fs::OpenOptions::new().create(true).append(true).open(file) else {
+    let Ok(f) = std::fs::OpenOptions::new()
+        .create(true)
+        .append(true)
+        .open(file)
+    else {
         return;
     };
     let file_layer = fmt::layer()
@@ -244,9 +283,14 @@ fn init_logging(file: &Path) {
         .with_writer(std::sync::Mutex::new(f))
         .with_filter(EnvFilter::try_from_default_env().unwrap_or_else(|_| EnvFilter::new("info")));
     let stderr_layer = std::env::var_os("RUST_LOG").map(|_| {
-        fmt::layer().with_writer(std::io::stderr).with_filter(EnvFilter::from_default_env())
+        fmt::layer()
+            .with_writer(std::io::stderr)
+            .with_filter(EnvFilter::from_default_env())
     });
-    let _ = tracing_subscriber::registry().with(file_layer).with(stderr_layer).try_init();
+    let _ = tracing_subscriber::registry()
+        .with(file_layer)
+        .with(stderr_layer)
+        .try_init();
 }
 
 fn run_engine(campaign: Campaign, store: Store, opts: &RunOptions) -> Result<u8, Failure> {
@@ -281,7 +325,10 @@ fn run_engine(campaign: Campaign, store: Store, opts: &RunOptions) -> Result<u8,
 fn open_store(state: &Path, name: &str) -> Result<Store, Failure> {
     let dir = engine::campaign_dir(state, name);
     if !Store::exists(&dir) {
-        return Err(Failure::input(format!("no campaign '{name}' under {}", state.display())));
+        return Err(Failure::input(format!(
+            "no campaign '{name}' under {}",
+            state.display()
+        )));
     }
     Ok(Store::open(&dir)?)
 }
@@ -291,7 +338,10 @@ fn open_store(state: &Path, name: &str) -> Result<Store, Failure> {
 fn read_tables(state: &Path, name: &str) -> Result<Tables, Failure> {
     let dir = engine::campaign_dir(state, name);
     if !Store::exists(&dir) {
-        return Err(Failure::input(format!("no campaign '{name}' under {}", state.display())));
+        return Err(Failure::input(format!(
+            "no campaign '{name}' under {}",
+            state.display()
+        )));
     }
     match Store::open(&dir) {
         Ok(store) => Ok(report::tables(&store)?),
@@ -303,9 +353,16 @@ fn read_tables(state: &Path, name: &str) -> Result<Tables, Failure> {
     }
 }
 
-fn print_or_json<T: serde::Serialize>(json: bool, value: &T, text: impl FnOnce() -> String) -> Result<u8, Failure> {
+fn print_or_json<T: serde::Serialize>(
+    json: bool,
+    value: &T,
+    text: impl FnOnce() -> String,
+) -> Result<u8, Failure> {
     if json {
-        println!("{}", serde_json::to_string_pretty(value).expect("serializable"));
+        println!(
+            "{}",
+            serde_json::to_string_pretty(value).expect("serializable")
+        );
     } else {
         print!("{}", text());
     }
@@ -315,7 +372,10 @@ fn print_or_json<T: serde::Serialize>(json: bool, value: &T, text: impl FnOnce()
 fn cmd_status(state: &Path, name: &str, json: bool) -> Result<u8, Failure> {
     let dir = engine::campaign_dir(state, name);
     if !Store::exists(&dir) {
-        return Err(Failure::input(format!("no campaign '{name}' under {}", state.display())));
+        return Err(Failure::input(format!(
+            "no campaign '{name}' under {}",
+            state.display()
+        )));
     }
     let snap = snapshot::read(&dir);
     let (running, tables) = match Store::open(&dir) {
@@ -329,7 +389,10 @@ fn cmd_status(state: &Path, name: &str, json: bool) -> Result<u8, Failure> {
         (_, false) => match tables.as_ref().and_then(|t| t.finished.clone()) {
             Some(reason) => format!("finished: {reason}"),
             None => match snap.as_ref().map(|s| s.phase.as_str()) {
-                Some("failed") => format!("failed: {} (resumable)", snap.as_ref().map(|s| s.message.clone()).unwrap_or_default()),
+                Some("failed") => format!(
+                    "failed: {} (resumable)",
+                    snap.as_ref().map(|s| s.message.clone()).unwrap_or_default()
+                ),
                 Some("running") => "stopped without a clean exit (killed?); resumable".to_string(),
                 Some(p) => format!("{p}; resumable"),
                 None => "not started".to_string(),
@@ -337,8 +400,15 @@ fn cmd_status(state: &Path, name: &str, json: bool) -> Result<u8, Failure> {
         },
     };
     let (rounds_done, states, evals) = match &tables {
-        Some(t) => (t.rounds.len() as u32, t.states.len() as u32, t.rounds.iter().map(|r| r.energy_evals).sum::<u64>()),
-        None => snap.as_ref().map(|s| (s.rounds_done, s.states, s.energy_evals)).unwrap_or((0, 0, 0)),
+        Some(t) => (
+            t.rounds.len() as u32,
+            t.states.len() as u32,
+            t.rounds.iter().map(|r| r.energy_evals).sum::<u64>(),
+        ),
+        None => snap
+            .as_ref()
+            .map(|s| (s.rounds_done, s.states, s.energy_evals))
+            .unwrap_or((0, 0, 0)),
     };
     if json {
         let v = serde_json::json!({
@@ -354,7 +424,10 @@ fn cmd_status(state: &Path, name: &str, json: bool) -> Result<u8, Failure> {
     println!("campaign {name}: {phase}");
     println!("  rounds done: {rounds_done}   states: {states}   energy evaluations: {evals}");
     if let (true, Some(s)) = (running, &snap) {
-        println!("  now: round {} of at most {}, stage {} ({}/{} tasks of the round done)", s.round, s.max_rounds, s.stage, s.tasks_done_this_round, s.tasks_this_round);
+        println!(
+            "  now: round {} of at most {}, stage {} ({}/{} tasks of the round done)",
+            s.round, s.max_rounds, s.stage, s.tasks_done_this_round, s.tasks_this_round
+        );
         if !s.tasks_running.is_empty() {
             println!("  running: {}", s.tasks_running.join(", "));
         }
@@ -387,7 +460,10 @@ fn cmd_check(file: &Path, json: bool) -> Result<u8, Failure> {
         return Ok(EXIT_OK);
     }
     println!("{}: campaign '{}' is valid", file.display(), c.name);
-    println!("  system      {}   kT = {}   seed = {}", c.system.label, c.kt, c.seed);
+    println!(
+        "  system      {}   kT = {}   seed = {}",
+        c.system.label, c.kt, c.seed
+    );
     println!("  start       {} configuration(s)", c.start.rows());
     println!("  each round:");
     for s in c.stages() {
@@ -395,15 +471,27 @@ fn cmd_check(file: &Path, json: bool) -> Result<u8, Failure> {
             spec::Worker::Builtin(k) => format!("built-in '{k}'"),
             spec::Worker::Command(_) => "command".to_string(),
         };
-        let fan = if s.role == crate::protocol::Role::Explore { format!(" x {} walkers", s.walkers) } else { String::new() };
+        let fan = if s.role == crate::protocol::Role::Explore {
+            format!(" x {} walkers", s.walkers)
+        } else {
+            String::new()
+        };
         println!("    {:<9} {:<14} {what}{fan}", s.role.as_str(), s.name);
     }
     let r = &c.stop;
     let mut rules = vec![format!("max_rounds = {}", r.max_rounds)];
-    if let Some(v) = r.max_energy_evals { rules.push(format!("max_energy_evals = {v}")); }
-    if let Some(v) = r.max_wall_seconds { rules.push(format!("max_wall_seconds = {v}")); }
-    if let Some(v) = r.expected_states { rules.push(format!("expected_states = {v}")); }
-    if let Some(v) = r.quiet_rounds { rules.push(format!("quiet_rounds = {v}")); }
+    if let Some(v) = r.max_energy_evals {
+        rules.push(format!("max_energy_evals = {v}"));
+    }
+    if let Some(v) = r.max_wall_seconds {
+        rules.push(format!("max_wall_seconds = {v}"));
+    }
+    if let Some(v) = r.expected_states {
+        rules.push(format!("expected_states = {v}"));
+    }
+    if let Some(v) = r.quiet_rounds {
+        rules.push(format!("quiet_rounds = {v}"));
+    }
     println!("  stops when  {}", rules.join(" or "));
     let e = &c.executor;
     println!(
@@ -412,8 +500,17 @@ fn cmd_check(file: &Path, json: bool) -> Result<u8, Failure> {
     );
     println!("  commands it will run (never through a shell):");
     for cmd in &commands {
-        let argv: Vec<String> = cmd["argv"].as_array().into_iter().flatten().filter_map(|v| v.as_str().map(String::from)).collect();
-        println!("    {:<14} {}", cmd["stage"].as_str().unwrap_or(""), argv.join(" "));
+        let argv: Vec<String> = cmd["argv"]
+            .as_array()
+            .into_iter()
+            .flatten()
+            .filter_map(|v| v.as_str().map(String::from))
+            .collect();
+        println!(
+            "    {:<14} {}",
+            cmd["stage"].as_str().unwrap_or(""),
+            argv.join(" ")
+        );
     }
     Ok(EXIT_OK)
 }
@@ -430,13 +527,26 @@ fn cmd_new(template: Option<&str>, out: Option<&Path>, list: bool) -> Result<u8,
     let name = template.expect("checked");
     let Some(t) = all.iter().find(|t| t.name == name) else {
         let names: Vec<&str> = all.iter().map(|t| t.name).collect();
-        return Err(Failure::input(format!("no template '{name}' (choose one of: {})", names.join(", "))));
+        return Err(Failure::input(format!(
+            "no template '{name}' (choose one of: {})",
+            names.join(", ")
+        )));
     };
-    let path = out.map(Path::to_path_buf).unwrap_or_else(|| PathBuf::from(format!("{name}.toml")));
+    let path = out
+        .map(Path::to_path_buf)
+        .unwrap_or_else(|| PathBuf::from(format!("{name}.toml")));
     if path.exists() {
-        return Err(Failure::input(format!("{} exists; choose another --out or remove it", path.display())));
+        return Err(Failure::input(format!(
+            "{} exists; choose another --out or remove it",
+            path.display()
+        )));
     }
-    std::fs::write(&path, t.text).map_err(|e| Failure::input(format!("cannot write {}: {e}", path.display())))?;
-    println!("wrote {}; check it with `tarn check {}`", path.display(), path.display());
+    std::fs::write(&path, t.text)
+        .map_err(|e| Failure::input(format!("cannot write {}: {e}", path.display())))?;
+    println!(
+        "wrote {}; check it with `tarn check {}`",
+        path.display(),
+        path.display()
+    );
     Ok(EXIT_OK)
 }

@@ -12,8 +12,8 @@ use super::inputs::{Prepared, TaskRef};
 use crate::protocol::{ResultError, Role, ValidResult, RESULT_PATH};
 use crate::spec::{Campaign, Stage};
 use crate::store::{
-    keys, Attempt, Batch, Estimate, ModelRecord, Sighting, StateRecord, Store, StoreError, TaskRecord, TaskStatus,
-    SCHEMA_VERSION,
+    keys, Attempt, Batch, Estimate, ModelRecord, Sighting, StateRecord, Store, StoreError,
+    TaskRecord, TaskStatus, SCHEMA_VERSION,
 };
 
 /// Why a result could not be committed.
@@ -26,7 +26,12 @@ pub enum CommitError {
 }
 
 /// The task record of `task`, with its attempts so far.
-pub fn task_record(stage: &Stage, task: &TaskRef, status: TaskStatus, attempts: Vec<Attempt>) -> TaskRecord {
+pub fn task_record(
+    stage: &Stage,
+    task: &TaskRef,
+    status: TaskStatus,
+    attempts: Vec<Attempt>,
+) -> TaskRecord {
     TaskRecord {
         v: SCHEMA_VERSION,
         id: task.id.clone(),
@@ -69,7 +74,10 @@ pub fn build(
         Role::Explore => {}
         Role::Dedup => catalogue_changes(store, campaign, task, prepared, result, &mut b)?,
         Role::Retrain => {
-            let bytes = result.model.as_ref().expect("validated: retrain has a model");
+            let bytes = result
+                .model
+                .as_ref()
+                .expect("validated: retrain has a model");
             let sha = hex::encode(Sha256::digest(bytes));
             b.put_blob(&key, "model", bytes);
             b.put(
@@ -86,7 +94,13 @@ pub fn build(
         }
         Role::Evaluate => free_energy_changes(store, task, result, &mut b)?,
     }
-    b.event("task_done", format!("{} committed ({} energy evaluations)", task.id, result.energy_evals));
+    b.event(
+        "task_done",
+        format!(
+            "{} committed ({} energy evaluations)",
+            task.id, result.energy_evals
+        ),
+    );
     b.put(keys::task(task.round, task.stage_index, task.walker), &rec);
     Ok(b)
 }
@@ -122,7 +136,10 @@ fn catalogue_changes(
         return Err(ResultError {
             file: RESULT_PATH.into(),
             field: "outputs.labels".into(),
-            message: format!("new state {j} (label {}) is the label of no sample", known + j),
+            message: format!(
+                "new state {j} (label {}) is the label of no sample",
+                known + j
+            ),
         }
         .into());
     }
@@ -134,17 +151,29 @@ fn catalogue_changes(
         }
     }
     let tasks = store.round_tasks(task.round)?;
-    let earlier: u64 = store.rounds()?.iter().filter(|r| r.round < task.round).map(|r| r.energy_evals).sum();
+    let earlier: u64 = store
+        .rounds()?
+        .iter()
+        .filter(|r| r.round < task.round)
+        .map(|r| r.energy_evals)
+        .sum();
     for j in 0..m {
         let i = first[j].expect("checked above");
         let origin = &prepared.provenance[i];
         let finder = tasks
             .iter()
-            .find(|t| t.role == Role::Explore && t.stage_index == origin.stage_index && t.walker == origin.walker)
+            .find(|t| {
+                t.role == Role::Explore
+                    && t.stage_index == origin.stage_index
+                    && t.walker == origin.walker
+            })
             .expect("provenance names a committed explore task");
         let before: u64 = tasks
             .iter()
-            .filter(|t| t.role == Role::Explore && (t.stage_index, t.walker) <= (origin.stage_index, origin.walker))
+            .filter(|t| {
+                t.role == Role::Explore
+                    && (t.stage_index, t.walker) <= (origin.stage_index, origin.walker)
+            })
             .map(|t| t.energy_evals)
             .sum();
         let id = (known + j) as u32;
@@ -162,18 +191,32 @@ fn catalogue_changes(
                 sample_index: origin.sample_index,
                 cost_to_find: earlier + before,
             },
-            sightings: BTreeMap::from([(task.round, counts.get(&(known + j)).copied().unwrap_or(0))]),
+            sightings: BTreeMap::from([(
+                task.round,
+                counts.get(&(known + j)).copied().unwrap_or(0),
+            )]),
             estimates: Vec::new(),
         };
         b.put(keys::state(id), &rec);
-        b.event("state_found", format!("state {id} (E = {:.6}) first seen by {} sample {}", rec.energy, finder.id, origin.sample_index));
+        b.event(
+            "state_found",
+            format!(
+                "state {id} (E = {:.6}) first seen by {} sample {}",
+                rec.energy, finder.id, origin.sample_index
+            ),
+        );
         states.push(rec);
     }
     Ok(())
 }
 
 /// Free-energy estimates from an evaluate result.
-fn free_energy_changes(store: &Store, task: &TaskRef, result: &ValidResult, b: &mut Batch) -> Result<(), CommitError> {
+fn free_energy_changes(
+    store: &Store,
+    task: &TaskRef,
+    result: &ValidResult,
+    b: &mut Batch,
+) -> Result<(), CommitError> {
     let Some(f) = result.arrays.get("free_energy") else {
         return Ok(());
     };
@@ -183,7 +226,9 @@ fn free_energy_changes(store: &Store, task: &TaskRef, result: &ValidResult, b: &
         if value.is_nan() {
             continue;
         }
-        let e = err.and_then(|a| a.data.get(i).copied()).filter(|v| v.is_finite());
+        let e = err
+            .and_then(|a| a.data.get(i).copied())
+            .filter(|v| v.is_finite());
         s.estimates.retain(|x| x.round != task.round);
         s.estimates.push(Estimate {
             round: task.round,

@@ -24,7 +24,13 @@ pub struct TaskRef {
 
 impl TaskRef {
     /// The task of `stage` (at position `stage_index` of the round) for `walker`.
-    pub fn new(campaign: &Campaign, round: u32, stage_index: u16, stage: &Stage, walker: u32) -> Self {
+    pub fn new(
+        campaign: &Campaign,
+        round: u32,
+        stage_index: u16,
+        stage: &Stage,
+        walker: u32,
+    ) -> Self {
         let id = format!("r{round:04}.{}.w{walker:03}", stage.name);
         TaskRef {
             round,
@@ -70,7 +76,11 @@ pub struct Origin {
 }
 
 /// The round's explore samples in stage, walker, sample order, with their origins.
-pub fn round_samples(store: &Store, campaign: &Campaign, round: u32) -> Result<(Array, Array, Vec<Origin>), StoreError> {
+pub fn round_samples(
+    store: &Store,
+    campaign: &Campaign,
+    round: u32,
+) -> Result<(Array, Array, Vec<Origin>), StoreError> {
     let dim = campaign.system.dim;
     let mut xs = Vec::new();
     let mut es = Vec::new();
@@ -80,8 +90,12 @@ pub fn round_samples(store: &Store, campaign: &Campaign, round: u32) -> Result<(
             continue;
         }
         let key = keys::task_suffix(t.round, t.stage_index, t.walker);
-        let s = store.array(&key, "samples")?.unwrap_or_else(|| Array::matrix(0, dim, vec![]));
-        let e = store.array(&key, "energies")?.unwrap_or_else(|| Array::vector(vec![]));
+        let s = store
+            .array(&key, "samples")?
+            .unwrap_or_else(|| Array::matrix(0, dim, vec![]));
+        let e = store
+            .array(&key, "energies")?
+            .unwrap_or_else(|| Array::vector(vec![]));
         for i in 0..s.rows() {
             origins.push(Origin {
                 stage_index: t.stage_index,
@@ -118,13 +132,21 @@ pub fn model_up_to(store: &Store, round: u32) -> Result<Option<Vec<u8>>, StoreEr
         .into_iter()
         .find(|t| t.role == Role::Retrain && t.status == TaskStatus::Done);
     match retrain {
-        Some(t) => store.blob(&keys::task_suffix(t.round, t.stage_index, t.walker), "model"),
+        Some(t) => store.blob(
+            &keys::task_suffix(t.round, t.stage_index, t.walker),
+            "model",
+        ),
         None => Ok(None),
     }
 }
 
 /// Assembles the inputs of a task.
-pub fn prepare(store: &Store, campaign: &Campaign, stage: &Stage, task: &TaskRef) -> Result<Prepared, StoreError> {
+pub fn prepare(
+    store: &Store,
+    campaign: &Campaign,
+    stage: &Stage,
+    task: &TaskRef,
+) -> Result<Prepared, StoreError> {
     let dim = campaign.system.dim;
     let mut inputs = BTreeMap::new();
     let mut provenance = Vec::new();
@@ -146,7 +168,11 @@ pub fn prepare(store: &Store, campaign: &Campaign, stage: &Stage, task: &TaskRef
             inputs.insert("catalogue".into(), cx);
             inputs.insert("catalogue_energies".into(), ce);
             provenance = origins;
-            model = if stage.role == Role::Evaluate { model_up_to(store, task.round)? } else { None };
+            model = if stage.role == Role::Evaluate {
+                model_up_to(store, task.round)?
+            } else {
+                None
+            };
         }
         Role::Retrain => {
             let (x, e) = training_pool(store, campaign, task.round, stage.pool_limit)?;
@@ -170,12 +196,21 @@ pub fn prepare(store: &Store, campaign: &Campaign, stage: &Stage, task: &TaskRef
 }
 
 /// The start configurations of an explore walker (one row).
-fn explore_start(store: &Store, campaign: &Campaign, stage: &Stage, task: &TaskRef) -> Result<Array, StoreError> {
+fn explore_start(
+    store: &Store,
+    campaign: &Campaign,
+    stage: &Stage,
+    task: &TaskRef,
+) -> Result<Array, StoreError> {
     let dim = campaign.system.dim;
     let from_start = || {
         let m = campaign.start.rows();
         let row = task.walker as usize % m;
-        Array::matrix(1, dim, campaign.start.data[row * dim..(row + 1) * dim].to_vec())
+        Array::matrix(
+            1,
+            dim,
+            campaign.start.data[row * dim..(row + 1) * dim].to_vec(),
+        )
     };
     if task.round <= 1 {
         return Ok(from_start());
@@ -195,7 +230,11 @@ fn explore_start(store: &Store, campaign: &Campaign, stage: &Stage, task: &TaskR
             match store.array(&prev, "samples")? {
                 Some(a) if a.rows() > 0 => {
                     let last = a.rows() - 1;
-                    Ok(Array::matrix(1, dim, a.data[last * dim..(last + 1) * dim].to_vec()))
+                    Ok(Array::matrix(
+                        1,
+                        dim,
+                        a.data[last * dim..(last + 1) * dim].to_vec(),
+                    ))
                 }
                 _ => Ok(from_start()),
             }
@@ -205,7 +244,12 @@ fn explore_start(store: &Store, campaign: &Campaign, stage: &Stage, task: &TaskR
 
 /// The pooled training set: kept samples of all rounds up to `round`, the newest first
 /// up to `limit`, returned in chronological order.
-fn training_pool(store: &Store, campaign: &Campaign, round: u32, limit: u64) -> Result<(Array, Array), StoreError> {
+fn training_pool(
+    store: &Store,
+    campaign: &Campaign,
+    round: u32,
+    limit: u64,
+) -> Result<(Array, Array), StoreError> {
     let dim = campaign.system.dim;
     let mut chunks: Vec<(Vec<f64>, Vec<f64>)> = Vec::new();
     let mut total = 0u64;
@@ -227,14 +271,20 @@ fn training_pool(store: &Store, campaign: &Campaign, round: u32, limit: u64) -> 
             if total >= limit {
                 break;
             }
-            if keep.as_ref().is_some_and(|k| k.data.get(i).copied() == Some(0.0)) {
+            if keep
+                .as_ref()
+                .is_some_and(|k| k.data.get(i).copied() == Some(0.0))
+            {
                 continue;
             }
             rx.push(x.data[i * dim..(i + 1) * dim].to_vec());
             re.push(e.data[i]);
             total += 1;
         }
-        chunks.push((rx.into_iter().rev().flatten().collect(), re.into_iter().rev().collect()));
+        chunks.push((
+            rx.into_iter().rev().flatten().collect(),
+            re.into_iter().rev().collect(),
+        ));
     }
     let mut xs = Vec::new();
     let mut es = Vec::new();

@@ -24,8 +24,8 @@ use crate::executor::{Exit, Job, LocalExecutor, Outcome};
 use crate::protocol::{npy, read_result, Role, TaskFile, PROTOCOL_VERSION};
 use crate::spec::{Campaign, KeepDirs, SpecError, Stage, Worker};
 use crate::store::{
-    keys, now_unix, Attempt, Batch, CampaignVersion, Meta, RoundRecord, StageTotals, StopDecision, Store, StoreError,
-    TaskStatus, SCHEMA_VERSION,
+    keys, now_unix, Attempt, Batch, CampaignVersion, Meta, RoundRecord, StageTotals, StopDecision,
+    Store, StoreError, TaskStatus, SCHEMA_VERSION,
 };
 use inputs::{Prepared, TaskRef};
 use monitor::{Event, Monitor};
@@ -80,7 +80,11 @@ pub fn campaign_dir(state_dir: &Path, name: &str) -> PathBuf {
 
 /// Opens (or creates) the store for a campaign file and checks that the file did not
 /// change, or records the change when the user accepts it.
-pub fn open_for_run(campaign: &Campaign, path: &Path, opts: &RunOptions) -> Result<Store, EngineError> {
+pub fn open_for_run(
+    campaign: &Campaign,
+    path: &Path,
+    opts: &RunOptions,
+) -> Result<Store, EngineError> {
     let dir = campaign_dir(&opts.state_dir, &campaign.name);
     let version = |index| CampaignVersion {
         v: SCHEMA_VERSION,
@@ -110,10 +114,18 @@ pub fn open_for_run(campaign: &Campaign, path: &Path, opts: &RunOptions) -> Resu
             });
         }
         let mut b = Batch::default();
-        b.put(keys::campaign(current.index + 1), &version(current.index + 1));
+        b.put(
+            keys::campaign(current.index + 1),
+            &version(current.index + 1),
+        );
         b.event(
             "campaign_changed",
-            format!("campaign file changed from {} to {} (accepted)\n{}", &current.hash[..12], &campaign.source_hash[..12], line_diff(&current.text, &campaign.source)),
+            format!(
+                "campaign file changed from {} to {} (accepted)\n{}",
+                &current.hash[..12],
+                &campaign.source_hash[..12],
+                line_diff(&current.text, &campaign.source)
+            ),
         );
         store.apply(b)?;
     }
@@ -145,7 +157,11 @@ pub fn line_diff(old: &str, new: &str) -> String {
     let mut lcs = vec![vec![0u32; b.len() + 1]; a.len() + 1];
     for i in (0..a.len()).rev() {
         for j in (0..b.len()).rev() {
-            lcs[i][j] = if a[i] == b[j] { lcs[i + 1][j + 1] + 1 } else { lcs[i + 1][j].max(lcs[i][j + 1]) };
+            lcs[i][j] = if a[i] == b[j] {
+                lcs[i + 1][j + 1] + 1
+            } else {
+                lcs[i + 1][j].max(lcs[i][j + 1])
+            };
         }
     }
     let (mut i, mut j, mut out) = (0, 0, Vec::new());
@@ -153,12 +169,12 @@ pub fn line_diff(old: &str, new: &str) -> String {
         if i < a.len() && j < b.len() && a[i] == b[j] {
             i += 1;
             j += 1;
-        } else if j < b.len() && (i == a.len() || lcs[i][j + 1] >= lcs[i + 1][j]) {
-            out.push(format!("  + {:>4} | {}", j + 1, b[j]));
-            j += 1;
-        } else {
+        } else if i < a.len() && (j == b.len() || lcs[i + 1][j] >= lcs[i][j + 1]) {
             out.push(format!("  - {:>4} | {}", i + 1, a[i]));
             i += 1;
+        } else {
+            out.push(format!("  + {:>4} | {}", j + 1, b[j]));
+            j += 1;
         }
     }
     out.join("\n")
@@ -177,7 +193,12 @@ struct Ctx {
 
 /// Runs the campaign until a stop rule holds, a task fails past its retries, or the
 /// user interrupts. `level` is raised by the signal handler.
-pub async fn run(campaign: Campaign, store: Store, opts: &RunOptions, level: watch::Receiver<StopLevel>) -> Result<RunEnd, EngineError> {
+pub async fn run(
+    campaign: Campaign,
+    store: Store,
+    opts: &RunOptions,
+    level: watch::Receiver<StopLevel>,
+) -> Result<RunEnd, EngineError> {
     let dir = store.dir().to_path_buf();
     let rounds = store.rounds()?;
     let snap = snapshot::Snapshot {
@@ -200,19 +221,27 @@ pub async fn run(campaign: Campaign, store: Store, opts: &RunOptions, level: wat
         exe: opts.exe.clone(),
         dir,
     });
-    ctx.store.log_event("started", format!("engine started (pid {})", std::process::id()))?;
+    ctx.store.log_event(
+        "started",
+        format!("engine started (pid {})", std::process::id()),
+    )?;
     let end = round_loop(&ctx).await;
     let end = match end {
         Ok(e) => e,
         Err(e) => {
-            ctx.monitor.emit(Event::Failed { message: e.to_string() });
+            ctx.monitor.emit(Event::Failed {
+                message: e.to_string(),
+            });
             return Err(e);
         }
     };
     match &end {
-        RunEnd::Finished(d) => ctx.monitor.emit(Event::Finished { reason: d.reason.clone() }),
+        RunEnd::Finished(d) => ctx.monitor.emit(Event::Finished {
+            reason: d.reason.clone(),
+        }),
         RunEnd::Interrupted => {
-            ctx.store.log_event("interrupted", "stopped by the user or a signal; resumable")?;
+            ctx.store
+                .log_event("interrupted", "stopped by the user or a signal; resumable")?;
             ctx.monitor.emit(Event::Interrupted);
         }
         RunEnd::Failed(m) => {
@@ -228,7 +257,13 @@ async fn round_loop(ctx: &Arc<Ctx>) -> Result<RunEnd, EngineError> {
     loop {
         let rounds = ctx.store.rounds()?;
         let states = ctx.store.states()?.len() as u32;
-        let decision = stop::check(&ctx.campaign.stop, &stop::Progress { rounds: &rounds, states });
+        let decision = stop::check(
+            &ctx.campaign.stop,
+            &stop::Progress {
+                rounds: &rounds,
+                states,
+            },
+        );
         if let Some(d) = decision {
             if ctx.store.finished()?.as_ref() != Some(&d) {
                 let mut b = Batch::default();
@@ -257,32 +292,62 @@ async fn round_loop(ctx: &Arc<Ctx>) -> Result<RunEnd, EngineError> {
 /// Runs every stage of a round, then records the round.
 async fn run_round(ctx: &Arc<Ctx>, round: u32) -> Result<RunEnd, EngineError> {
     let started = Instant::now();
-    let stages: Vec<(u16, Stage)> = ctx.campaign.stages().into_iter().cloned().enumerate().map(|(i, s)| (i as u16, s)).collect();
+    let stages: Vec<(u16, Stage)> = ctx
+        .campaign
+        .stages()
+        .into_iter()
+        .cloned()
+        .enumerate()
+        .map(|(i, s)| (i as u16, s))
+        .collect();
     let total: u32 = stages.iter().map(|(_, s)| s.walkers).sum();
-    ctx.monitor.emit(Event::RoundStarted { round, tasks: total });
-    let explore: Vec<&(u16, Stage)> = stages.iter().filter(|(_, s)| s.role == Role::Explore).collect();
+    ctx.monitor.emit(Event::RoundStarted {
+        round,
+        tasks: total,
+    });
+    let explore: Vec<&(u16, Stage)> = stages
+        .iter()
+        .filter(|(_, s)| s.role == Role::Explore)
+        .collect();
     let explore_tasks: u32 = explore.iter().map(|(_, s)| s.walkers).sum();
     let names: Vec<&str> = explore.iter().map(|(_, s)| s.name.as_str()).collect();
-    ctx.monitor.emit(Event::StageStarted { round, stage: names.join("+"), tasks: explore_tasks });
+    ctx.monitor.emit(Event::StageStarted {
+        round,
+        stage: names.join("+"),
+        tasks: explore_tasks,
+    });
     let mut set = tokio::task::JoinSet::new();
+    let mut order = 0usize;
     for (idx, stage) in &explore {
         for w in 0..stage.walkers {
             let task = TaskRef::new(&ctx.campaign, round, *idx, stage, w);
             let ctx = ctx.clone();
             let stage = stage.clone();
-            set.spawn(async move { run_task(&ctx, &stage, &task).await });
+            let position = order;
+            order += 1;
+            set.spawn(async move { (position, run_task(&ctx, &stage, &task).await) });
         }
     }
-    let mut end = RunEnd::Finished(placeholder());
+    // Tasks finish in any order; the round's outcome is read in task order, so that the
+    // message a user sees does not depend on which worker failed first.
+    let mut ends: Vec<Option<RunEnd>> = vec![None; order];
     while let Some(joined) = set.join_next().await {
-        let r = joined.map_err(|e| EngineError::Io(format!("task panicked: {e}")))??;
-        end = worse(end, r);
+        let (position, r) = joined.map_err(|e| EngineError::Io(format!("task panicked: {e}")))?;
+        ends[position] = Some(r?);
     }
+    let end = ends
+        .into_iter()
+        .flatten()
+        .fold(RunEnd::Finished(placeholder()), worse);
     if end != RunEnd::Finished(placeholder()) {
         return Ok(end);
     }
     for (idx, stage) in stages.iter().filter(|(_, s)| s.role != Role::Explore) {
-        ctx.monitor.emit(Event::StageStarted { round, stage: stage.name.clone(), tasks: 1 });
+        ctx.monitor.emit(Event::StageStarted {
+            round,
+            stage: stage.name.clone(),
+            tasks: 1,
+        });
         let task = TaskRef::new(&ctx.campaign, round, *idx, stage, 0);
         match run_task(ctx, stage, &task).await? {
             RunEnd::Finished(_) => {}
@@ -326,7 +391,12 @@ fn finish_round(ctx: &Ctx, round: u32, wall: Duration) -> Result<(), EngineError
         let mut sums: BTreeMap<String, (f64, u32)> = BTreeMap::new();
         for t in &mine {
             totals.energy_evals += t.energy_evals;
-            totals.samples += t.arrays.get("samples").and_then(|s| s.first()).copied().unwrap_or(0) as u64;
+            totals.samples += t
+                .arrays
+                .get("samples")
+                .and_then(|s| s.first())
+                .copied()
+                .unwrap_or(0) as u64;
             for a in &t.attempts {
                 totals.cpu_seconds += a.cpu_seconds;
                 totals.wall_seconds += a.wall_seconds;
@@ -339,7 +409,10 @@ fn finish_round(ctx: &Ctx, round: u32, wall: Duration) -> Result<(), EngineError
                 }
             }
         }
-        totals.metrics = sums.into_iter().map(|(k, (s, n))| (k, s / f64::from(n))).collect();
+        totals.metrics = sums
+            .into_iter()
+            .map(|(k, (s, n))| (k, s / f64::from(n)))
+            .collect();
         stages.push(totals);
     }
     let previous: u64 = ctx.store.rounds()?.iter().map(|r| r.energy_evals).sum();
@@ -360,16 +433,33 @@ fn finish_round(ctx: &Ctx, round: u32, wall: Duration) -> Result<(), EngineError
     };
     let mut rounds = ctx.store.rounds()?;
     rounds.push(rec.clone());
-    rec.stop = stop::check(&ctx.campaign.stop, &stop::Progress { rounds: &rounds, states: states.len() as u32 });
+    rec.stop = stop::check(
+        &ctx.campaign.stop,
+        &stop::Progress {
+            rounds: &rounds,
+            states: states.len() as u32,
+        },
+    );
     let mut b = Batch::default();
     b.put(keys::round(round), &rec);
-    b.event("round_done", format!("round {round}: {new_states} new states, {} in all", states.len()));
+    b.event(
+        "round_done",
+        format!(
+            "round {round}: {new_states} new states, {} in all",
+            states.len()
+        ),
+    );
     if let Some(d) = &rec.stop {
         Store::put_finished(&mut b, Some(d));
         b.event("stopped", d.reason.clone());
     }
     ctx.store.apply(b)?;
-    ctx.monitor.emit(Event::RoundDone { round, new_states, states: states.len() as u32, energy_evals });
+    ctx.monitor.emit(Event::RoundDone {
+        round,
+        new_states,
+        states: states.len() as u32,
+        energy_evals,
+    });
     write_tables(ctx);
     Ok(())
 }
@@ -393,10 +483,21 @@ async fn run_task(ctx: &Arc<Ctx>, stage: &Stage, task: &TaskRef) -> Result<RunEn
     run_task_inner(ctx, stage, task).instrument(span).await
 }
 
-async fn run_task_inner(ctx: &Arc<Ctx>, stage: &Stage, task: &TaskRef) -> Result<RunEnd, EngineError> {
+async fn run_task_inner(
+    ctx: &Arc<Ctx>,
+    stage: &Stage,
+    task: &TaskRef,
+) -> Result<RunEnd, EngineError> {
     let existing = ctx.store.task(task.round, task.stage_index, task.walker)?;
-    if existing.as_ref().is_some_and(|t| t.status == TaskStatus::Done) {
-        ctx.monitor.emit(Event::TaskDone { id: task.id.clone(), energy_evals: 0, skipped: true });
+    if existing
+        .as_ref()
+        .is_some_and(|t| t.status == TaskStatus::Done)
+    {
+        ctx.monitor.emit(Event::TaskDone {
+            id: task.id.clone(),
+            energy_evals: 0,
+            skipped: true,
+        });
         return Ok(RunEnd::Finished(placeholder()));
     }
     let mut attempts = existing.map(|t| t.attempts).unwrap_or_default();
@@ -408,9 +509,22 @@ async fn run_task_inner(ctx: &Arc<Ctx>, stage: &Stage, task: &TaskRef) -> Result
         }
         let number = attempts.len() as u32 + 1;
         let prepared = inputs::prepare(&ctx.store, &ctx.campaign, stage, task)?;
-        let attempt_dir = ctx.dir.join("tasks").join(format!("r{:04}", task.round)).join(format!("{}.w{:03}", stage.name, task.walker)).join(format!("a{number}"));
-        write_task_dir(ctx, stage, task, &prepared, &attempt_dir).map_err(|e| EngineError::Io(format!("{}: cannot prepare the task directory: {e}", attempt_dir.display())))?;
-        ctx.monitor.emit(Event::TaskStarted { id: task.id.clone(), attempt: number });
+        let attempt_dir = ctx
+            .dir
+            .join("tasks")
+            .join(format!("r{:04}", task.round))
+            .join(format!("{}.w{:03}", stage.name, task.walker))
+            .join(format!("a{number}"));
+        write_task_dir(ctx, stage, task, &prepared, &attempt_dir).map_err(|e| {
+            EngineError::Io(format!(
+                "{}: cannot prepare the task directory: {e}",
+                attempt_dir.display()
+            ))
+        })?;
+        ctx.monitor.emit(Event::TaskStarted {
+            id: task.id.clone(),
+            attempt: number,
+        });
         let started_unix = now_unix();
         let job = make_job(ctx, stage, task, &attempt_dir);
         let outcome = ctx.executor.run(job, ctx.level.clone()).await;
@@ -418,7 +532,15 @@ async fn run_task_inner(ctx: &Arc<Ctx>, stage: &Stage, task: &TaskRef) -> Result
         let failure = match &outcome.exit {
             Exit::Cancelled => {
                 attempt.outcome = "cancelled".into();
-                record_attempt(ctx, stage, task, &attempts, attempt, TaskStatus::Pending, None)?;
+                record_attempt(
+                    ctx,
+                    stage,
+                    task,
+                    &attempts,
+                    attempt,
+                    TaskStatus::Pending,
+                    None,
+                )?;
                 return Ok(RunEnd::Interrupted);
             }
             Exit::Code(0) => match read_result(&attempt_dir, &prepared.expect) {
@@ -426,10 +548,22 @@ async fn run_task_inner(ctx: &Arc<Ctx>, stage: &Stage, task: &TaskRef) -> Result
                     attempt.energy_evals = valid.energy_evals;
                     let mut all = attempts.clone();
                     all.push(attempt.clone());
-                    match commit::build(&ctx.store, &ctx.campaign, stage, task, &prepared, &valid, all) {
+                    match commit::build(
+                        &ctx.store,
+                        &ctx.campaign,
+                        stage,
+                        task,
+                        &prepared,
+                        &valid,
+                        all,
+                    ) {
                         Ok(batch) => {
                             ctx.store.apply(batch)?;
-                            ctx.monitor.emit(Event::TaskDone { id: task.id.clone(), energy_evals: valid.energy_evals, skipped: false });
+                            ctx.monitor.emit(Event::TaskDone {
+                                id: task.id.clone(),
+                                energy_evals: valid.energy_evals,
+                                skipped: false,
+                            });
                             if ctx.campaign.executor.keep_task_dirs != KeepDirs::All {
                                 let _ = std::fs::remove_dir_all(&attempt_dir);
                             }
@@ -447,19 +581,43 @@ async fn run_task_inner(ctx: &Arc<Ctx>, stage: &Stage, task: &TaskRef) -> Result
                     e.to_string()
                 }
             },
-            other => describe_exit(other, &outcome, ctx.campaign.executor.timeout.as_secs_f64()),
+            other => describe_exit(
+                other,
+                &outcome,
+                stage
+                    .timeout
+                    .unwrap_or(ctx.campaign.executor.timeout)
+                    .as_secs_f64(),
+            ),
         };
         last_error = format!("task {}: {failure}", task.id);
         attempt.error = Some(failure.clone());
         let final_attempt = this_session == policy.attempts;
-        let status = if final_attempt { TaskStatus::Failed } else { TaskStatus::Pending };
-        record_attempt(ctx, stage, task, &attempts, attempt.clone(), status, Some(&last_error))?;
+        let status = if final_attempt {
+            TaskStatus::Failed
+        } else {
+            TaskStatus::Pending
+        };
+        record_attempt(
+            ctx,
+            stage,
+            task,
+            &attempts,
+            attempt.clone(),
+            status,
+            Some(&last_error),
+        )?;
         attempts.push(attempt);
         if ctx.campaign.executor.keep_task_dirs == KeepDirs::None {
             let _ = std::fs::remove_dir_all(&attempt_dir);
         }
         let delay = (!final_attempt).then(|| policy.delay(number + 1, task.seed));
-        ctx.monitor.emit(Event::AttemptFailed { id: task.id.clone(), attempt: number, error: failure, retry_in: delay.map(|d| d.as_secs_f64()) });
+        ctx.monitor.emit(Event::AttemptFailed {
+            id: task.id.clone(),
+            attempt: number,
+            error: failure,
+            retry_in: delay.map(|d| d.as_secs_f64()),
+        });
         if let Some(d) = delay {
             let mut level = ctx.level.clone();
             tokio::select! {
@@ -472,13 +630,28 @@ async fn run_task_inner(ctx: &Arc<Ctx>, stage: &Stage, task: &TaskRef) -> Result
 }
 
 /// Stores a failed or cancelled attempt without touching anything committed.
-fn record_attempt(ctx: &Ctx, stage: &Stage, task: &TaskRef, prior: &[crate::store::Attempt], attempt: Attempt, status: TaskStatus, message: Option<&str>) -> Result<(), EngineError> {
+fn record_attempt(
+    ctx: &Ctx,
+    stage: &Stage,
+    task: &TaskRef,
+    prior: &[crate::store::Attempt],
+    attempt: Attempt,
+    status: TaskStatus,
+    message: Option<&str>,
+) -> Result<(), EngineError> {
     let mut all = prior.to_vec();
     all.push(attempt);
     let rec = commit::task_record(stage, task, status, all);
     let mut b = Batch::default();
     b.put(keys::task(task.round, task.stage_index, task.walker), &rec);
-    b.event(if status == TaskStatus::Failed { "task_failed" } else { "attempt_failed" }, message.unwrap_or("attempt cancelled").to_string());
+    b.event(
+        if status == TaskStatus::Failed {
+            "task_failed"
+        } else {
+            "attempt_failed"
+        },
+        message.unwrap_or("attempt cancelled").to_string(),
+    );
     ctx.store.apply(b)?;
     Ok(())
 }
@@ -516,18 +689,33 @@ fn attempt_of(number: u32, o: &Outcome, started_unix: f64) -> Attempt {
 
 /// A sentence for a worker that did not exit cleanly, with the end of its stderr.
 fn describe_exit(exit: &Exit, o: &Outcome, timeout: f64) -> String {
-    let last = o.stderr_tail.lines().rev().find(|l| !l.trim().is_empty()).map(|l| format!("; its stderr ends: {}", l.trim())).unwrap_or_default();
+    let last = o
+        .stderr_tail
+        .lines()
+        .rev()
+        .find(|l| !l.trim().is_empty())
+        .map(|l| format!("; its stderr ends: {}", l.trim()))
+        .unwrap_or_default();
     match exit {
         Exit::Code(c) => format!("the worker exited with status {c}{last}"),
         Exit::Signal(s) => format!("the worker was killed by signal {s}{last}"),
-        Exit::TimedOut => format!("the worker ran past its timeout of {timeout:.0} s; its process group was ended{last}"),
+        Exit::TimedOut => format!(
+            "the worker ran past its timeout of {} s; its process group was ended{last}",
+            (timeout * 1000.0).round() / 1000.0
+        ),
         Exit::SpawnFailed(m) => m.clone(),
         Exit::Cancelled => "cancelled".into(),
     }
 }
 
 /// Writes `task.json` and the input arrays into a fresh attempt directory.
-fn write_task_dir(ctx: &Ctx, stage: &Stage, task: &TaskRef, prepared: &Prepared, dir: &Path) -> std::io::Result<()> {
+fn write_task_dir(
+    ctx: &Ctx,
+    stage: &Stage,
+    task: &TaskRef,
+    prepared: &Prepared,
+    dir: &Path,
+) -> std::io::Result<()> {
     if dir.exists() {
         std::fs::remove_dir_all(dir)?;
     }
@@ -564,7 +752,10 @@ fn write_task_dir(ctx: &Ctx, stage: &Stage, task: &TaskRef, prepared: &Prepared,
         inputs: rel,
         model,
     };
-    std::fs::write(dir.join("task.json"), serde_json::to_vec_pretty(&file).map_err(std::io::Error::other)?)
+    std::fs::write(
+        dir.join("task.json"),
+        serde_json::to_vec_pretty(&file).map_err(std::io::Error::other)?,
+    )
 }
 
 /// The process to start for a task.
@@ -573,11 +764,19 @@ fn make_job(ctx: &Ctx, stage: &Stage, task: &TaskRef, dir: &Path) -> Job {
     let threads = ctx.campaign.executor.threads_per_task.to_string();
     let abs_dir = dir.canonicalize().unwrap_or_else(|_| dir.to_path_buf());
     let mut env = vec![
-        ("TARN_TASK".to_string(), abs_dir.join("task.json").display().to_string()),
+        (
+            "TARN_TASK".to_string(),
+            abs_dir.join("task.json").display().to_string(),
+        ),
         ("TARN_TASK_DIR".to_string(), abs_dir.display().to_string()),
         ("TARN_SEED".to_string(), task.seed.to_string()),
     ];
-    for k in ["RAYON_NUM_THREADS", "OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"] {
+    for k in [
+        "RAYON_NUM_THREADS",
+        "OMP_NUM_THREADS",
+        "OPENBLAS_NUM_THREADS",
+        "MKL_NUM_THREADS",
+    ] {
         env.push((k.to_string(), threads.clone()));
     }
     Job {
@@ -609,8 +808,15 @@ pub fn resolve_command(worker: &Worker, exe: &Path, base: &Path) -> (PathBuf, Ve
                     a.to_string()
                 }
             };
-            let program = if cmd[0].contains('/') { fix(&cmd[0]) } else { cmd[0].clone() };
-            (PathBuf::from(program), cmd[1..].iter().map(|a| fix(a)).collect())
+            let program = if cmd[0].contains('/') {
+                fix(&cmd[0])
+            } else {
+                cmd[0].clone()
+            };
+            (
+                PathBuf::from(program),
+                cmd[1..].iter().map(|a| fix(a)).collect(),
+            )
         }
     }
 }
@@ -620,17 +826,26 @@ pub fn resolve_command(worker: &Worker, exe: &Path, base: &Path) -> (PathBuf, Ve
 pub fn install_signals(monitor_quiet: bool) -> watch::Receiver<StopLevel> {
     let (tx, rx) = watch::channel(StopLevel::Run);
     tokio::spawn(async move {
-        let mut term = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()).ok();
+        let mut term =
+            tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()).ok();
         loop {
             let hard = tokio::select! {
                 r = tokio::signal::ctrl_c() => { if r.is_err() { return; } *tx.borrow() >= StopLevel::AfterRunning }
                 _ = async { match term.as_mut() { Some(t) => { t.recv().await; } None => std::future::pending::<()>().await } } => true,
             };
-            let level = if hard { StopLevel::Now } else { StopLevel::AfterRunning };
+            let level = if hard {
+                StopLevel::Now
+            } else {
+                StopLevel::AfterRunning
+            };
             if !monitor_quiet {
                 eprintln!(
                     "{}",
-                    if hard { "tarn: ending running workers now; the campaign stays resumable" } else { "tarn: interrupt — finishing running tasks, then stopping (Ctrl-C again ends them now)" }
+                    if hard {
+                        "tarn: ending running workers now; the campaign stays resumable"
+                    } else {
+                        "tarn: interrupt — finishing running tasks, then stopping (Ctrl-C again ends them now)"
+                    }
                 );
             }
             let _ = tx.send(level);

@@ -16,15 +16,45 @@ use crate::store::now_unix;
 /// Everything the engine tells its observers.
 #[derive(Debug, Clone)]
 pub enum Event {
-    RoundStarted { round: u32, tasks: u32 },
-    StageStarted { round: u32, stage: String, tasks: u32 },
-    TaskStarted { id: String, attempt: u32 },
-    AttemptFailed { id: String, attempt: u32, error: String, retry_in: Option<f64> },
-    TaskDone { id: String, energy_evals: u64, skipped: bool },
-    RoundDone { round: u32, new_states: u32, states: u32, energy_evals: u64 },
-    StopRequested { hard: bool },
-    Finished { reason: String },
-    Failed { message: String },
+    RoundStarted {
+        round: u32,
+        tasks: u32,
+    },
+    StageStarted {
+        round: u32,
+        stage: String,
+        tasks: u32,
+    },
+    TaskStarted {
+        id: String,
+        attempt: u32,
+    },
+    AttemptFailed {
+        id: String,
+        attempt: u32,
+        error: String,
+        retry_in: Option<f64>,
+    },
+    TaskDone {
+        id: String,
+        energy_evals: u64,
+        skipped: bool,
+    },
+    RoundDone {
+        round: u32,
+        new_states: u32,
+        states: u32,
+        energy_evals: u64,
+    },
+    StopRequested {
+        hard: bool,
+    },
+    Finished {
+        reason: String,
+    },
+    Failed {
+        message: String,
+    },
     Interrupted,
 }
 
@@ -61,7 +91,11 @@ impl Monitor {
             );
             round.set_prefix("campaign");
             round.set_position(u64::from(snap.rounds_done));
-            Bars { multi, round, stage: None }
+            Bars {
+                multi,
+                round,
+                stage: None,
+            }
         });
         let m = Monitor {
             inner: Mutex::new(Inner { snap, bars, quiet }),
@@ -106,7 +140,11 @@ impl Monitor {
                 tracing::info!(round, tasks, "round started");
                 plain.then(|| format!("round {round}: {tasks} tasks"))
             }
-            Event::StageStarted { round, stage, tasks } => {
+            Event::StageStarted {
+                round,
+                stage,
+                tasks,
+            } => {
                 snap.stage = stage.clone();
                 tracing::info!(round, stage = %stage, tasks, "stage started");
                 if let Some(b) = inner.bars.as_mut() {
@@ -115,9 +153,11 @@ impl Monitor {
                     }
                     let bar = b.multi.add(ProgressBar::new(u64::from(*tasks)));
                     bar.set_style(
-                        ProgressStyle::with_template("{prefix:>8} [{bar:30}] {pos}/{len} tasks  {msg}")
-                            .expect("template")
-                            .progress_chars("=> "),
+                        ProgressStyle::with_template(
+                            "{prefix:>8} [{bar:30}] {pos}/{len} tasks  {msg}",
+                        )
+                        .expect("template")
+                        .progress_chars("=> "),
                     );
                     bar.set_prefix(stage.chars().take(8).collect::<String>());
                     b.stage = Some(bar);
@@ -131,15 +171,26 @@ impl Monitor {
                 tracing::debug!(task = %id, attempt, "task started");
                 None
             }
-            Event::AttemptFailed { id, attempt, error, retry_in } => {
+            Event::AttemptFailed {
+                id,
+                attempt,
+                error,
+                retry_in,
+            } => {
                 snap.tasks_running.retain(|t| t != id);
                 tracing::warn!(task = %id, attempt, error = %error, "attempt failed");
                 Some(match retry_in {
-                    Some(s) => format!("task {id}: attempt {attempt} failed: {error}\n  retrying in {s:.1} s"),
+                    Some(s) => format!(
+                        "task {id}: attempt {attempt} failed: {error}\n  retrying in {s:.1} s"
+                    ),
                     None => format!("task {id}: attempt {attempt} failed: {error}"),
                 })
             }
-            Event::TaskDone { id, energy_evals, skipped } => {
+            Event::TaskDone {
+                id,
+                energy_evals,
+                skipped,
+            } => {
                 snap.tasks_running.retain(|t| t != id);
                 snap.tasks_done_this_round += 1;
                 snap.energy_evals += energy_evals;
@@ -150,7 +201,12 @@ impl Monitor {
                 }
                 None
             }
-            Event::RoundDone { round, new_states, states, energy_evals } => {
+            Event::RoundDone {
+                round,
+                new_states,
+                states,
+                energy_evals,
+            } => {
                 snap.rounds_done = *round;
                 snap.states = *states;
                 tracing::info!(round, new_states, states, energy_evals, "round done");
@@ -162,9 +218,14 @@ impl Monitor {
                 Some(msg)
             }
             Event::StopRequested { hard } => {
-                snap.message = if *hard { "ending running tasks now".into() } else { "stopping after running tasks commit".into() };
+                snap.message = if *hard {
+                    "ending running tasks now".into()
+                } else {
+                    "stopping after running tasks commit".into()
+                };
                 Some(if *hard {
-                    "second interrupt: ending running workers now; the campaign stays resumable".to_string()
+                    "second interrupt: ending running workers now; the campaign stays resumable"
+                        .to_string()
                 } else {
                     "interrupt: finishing the running tasks, then stopping (press Ctrl-C again to end them now)".to_string()
                 })
@@ -190,7 +251,10 @@ impl Monitor {
                 None
             }
         };
-        if matches!(event, Event::Finished { .. } | Event::Failed { .. } | Event::Interrupted) {
+        if matches!(
+            event,
+            Event::Finished { .. } | Event::Failed { .. } | Event::Interrupted
+        ) {
             if let Some(b) = inner.bars.take() {
                 if let Some(s) = b.stage {
                     s.finish_and_clear();

@@ -43,7 +43,10 @@ pub fn tables_path(dir: &Path) -> PathBuf {
 /// Writes `value` as JSON to `path` atomically (temporary file, then rename).
 pub fn write_json<T: Serialize>(path: &Path, value: &T) -> std::io::Result<()> {
     let tmp = path.with_extension("json.tmp");
-    std::fs::write(&tmp, serde_json::to_vec_pretty(value).map_err(std::io::Error::other)?)?;
+    std::fs::write(
+        &tmp,
+        serde_json::to_vec_pretty(value).map_err(std::io::Error::other)?,
+    )?;
     std::fs::rename(tmp, path)
 }
 
@@ -66,7 +69,11 @@ pub fn holder_text(dir: &Path) -> String {
             s.pid,
             s.host,
             s.round,
-            if pid_alive(s.pid) { "" } else { "; that pid is not alive here" }
+            if pid_alive(s.pid) {
+                ""
+            } else {
+                "; that pid is not alive here"
+            }
         ),
         _ => String::new(),
     }

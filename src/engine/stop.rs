@@ -20,26 +20,45 @@ pub fn check(rules: &StopRules, p: &Progress) -> Option<StopDecision> {
     let wall: f64 = p.rounds.iter().map(|r| r.wall_seconds).sum();
     if let Some(n) = rules.expected_states {
         if p.states >= n {
-            return Some(decision("expected_states", format!("{} states found, {n} expected", p.states)));
+            return Some(decision(
+                "expected_states",
+                format!("{} states found, {n} expected", p.states),
+            ));
         }
     }
     if let Some(k) = rules.quiet_rounds {
         let k = k as usize;
-        if p.rounds.len() >= k && p.rounds[p.rounds.len() - k..].iter().all(|r| r.new_states == 0) {
-            return Some(decision("quiet_rounds", format!("no new state in the last {k} rounds")));
+        if p.rounds.len() >= k
+            && p.rounds[p.rounds.len() - k..]
+                .iter()
+                .all(|r| r.new_states == 0)
+        {
+            return Some(decision(
+                "quiet_rounds",
+                format!("no new state in the last {k} rounds"),
+            ));
         }
     }
     if done >= rules.max_rounds {
-        return Some(decision("max_rounds", format!("{done} rounds done, the limit is {}", rules.max_rounds)));
+        return Some(decision(
+            "max_rounds",
+            format!("{done} rounds done, the limit is {}", rules.max_rounds),
+        ));
     }
     if let Some(max) = rules.max_energy_evals {
         if evals >= max {
-            return Some(decision("max_energy_evals", format!("{evals} energy evaluations spent, the budget is {max}")));
+            return Some(decision(
+                "max_energy_evals",
+                format!("{evals} energy evaluations spent, the budget is {max}"),
+            ));
         }
     }
     if let Some(max) = rules.max_wall_seconds {
         if wall >= max {
-            return Some(decision("max_wall_seconds", format!("{wall:.0} s of rounds run, the budget is {max:.0} s")));
+            return Some(decision(
+                "max_wall_seconds",
+                format!("{wall:.0} s of rounds run, the budget is {max:.0} s"),
+            ));
         }
     }
     None
@@ -73,7 +92,13 @@ mod tests {
     }
 
     fn rules() -> StopRules {
-        StopRules { max_rounds: 5, max_energy_evals: None, max_wall_seconds: None, expected_states: None, quiet_rounds: None }
+        StopRules {
+            max_rounds: 5,
+            max_energy_evals: None,
+            max_wall_seconds: None,
+            expected_states: None,
+            quiet_rounds: None,
+        }
     }
 
     #[test]
@@ -81,18 +106,96 @@ mod tests {
         let rs: Vec<_> = (1..=3).map(|i| round(i, u32::from(i == 1), 100)).collect();
         let table: Vec<(StopRules, usize, u32, Option<&str>)> = vec![
             (rules(), 3, 1, None),
-            (StopRules { max_rounds: 3, ..rules() }, 3, 1, Some("max_rounds")),
-            (StopRules { max_energy_evals: Some(300), ..rules() }, 3, 1, Some("max_energy_evals")),
-            (StopRules { max_energy_evals: Some(301), ..rules() }, 3, 1, None),
-            (StopRules { max_wall_seconds: Some(30.0), ..rules() }, 3, 1, Some("max_wall_seconds")),
-            (StopRules { expected_states: Some(2), ..rules() }, 3, 1, None),
-            (StopRules { expected_states: Some(2), ..rules() }, 3, 2, Some("expected_states")),
-            (StopRules { quiet_rounds: Some(2), ..rules() }, 3, 1, Some("quiet_rounds")),
-            (StopRules { quiet_rounds: Some(3), ..rules() }, 3, 1, None),
-            (StopRules { quiet_rounds: Some(2), ..rules() }, 2, 1, None),
+            (
+                StopRules {
+                    max_rounds: 3,
+                    ..rules()
+                },
+                3,
+                1,
+                Some("max_rounds"),
+            ),
+            (
+                StopRules {
+                    max_energy_evals: Some(300),
+                    ..rules()
+                },
+                3,
+                1,
+                Some("max_energy_evals"),
+            ),
+            (
+                StopRules {
+                    max_energy_evals: Some(301),
+                    ..rules()
+                },
+                3,
+                1,
+                None,
+            ),
+            (
+                StopRules {
+                    max_wall_seconds: Some(30.0),
+                    ..rules()
+                },
+                3,
+                1,
+                Some("max_wall_seconds"),
+            ),
+            (
+                StopRules {
+                    expected_states: Some(2),
+                    ..rules()
+                },
+                3,
+                1,
+                None,
+            ),
+            (
+                StopRules {
+                    expected_states: Some(2),
+                    ..rules()
+                },
+                3,
+                2,
+                Some("expected_states"),
+            ),
+            (
+                StopRules {
+                    quiet_rounds: Some(2),
+                    ..rules()
+                },
+                3,
+                1,
+                Some("quiet_rounds"),
+            ),
+            (
+                StopRules {
+                    quiet_rounds: Some(3),
+                    ..rules()
+                },
+                3,
+                1,
+                None,
+            ),
+            (
+                StopRules {
+                    quiet_rounds: Some(2),
+                    ..rules()
+                },
+                2,
+                1,
+                None,
+            ),
         ];
         for (i, (r, n, states, want)) in table.into_iter().enumerate() {
-            let got = check(&r, &Progress { rounds: &rs[..n], states });
+            let got = check(
+                &r,
+                &Progress {
+                    rounds: &rs[..n],
+                    states,
+                },
+            );
             assert_eq!(got.map(|d| d.rule), want.map(String::from), "row {i}");
         }
     }

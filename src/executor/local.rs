@@ -58,8 +58,18 @@ impl LocalExecutor {
             }
         };
         let pid = child.id() as i32;
-        let out = drain(child.stdout.take().expect("piped"), job.dir.join("stdout.log"), job.tail_bytes, job.log_bytes);
-        let err = drain(child.stderr.take().expect("piped"), job.dir.join("stderr.log"), job.tail_bytes, job.log_bytes);
+        let out = drain(
+            child.stdout.take().expect("piped"),
+            job.dir.join("stdout.log"),
+            job.tail_bytes,
+            job.log_bytes,
+        );
+        let err = drain(
+            child.stderr.take().expect("piped"),
+            job.dir.join("stderr.log"),
+            job.tail_bytes,
+            job.log_bytes,
+        );
         let (tx, mut exited) = oneshot::channel();
         std::thread::spawn(move || {
             let _ = tx.send(wait4(pid));

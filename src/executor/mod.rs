@@ -16,7 +16,15 @@ pub use local::LocalExecutor;
 
 /// Environment variables passed through to workers (everything else is dropped).
 pub const ENV_ALLOW: &[&str] = &[
-    "PATH", "HOME", "LANG", "LC_ALL", "TZ", "TMPDIR", "PYTHONPATH", "VIRTUAL_ENV", "RUST_LOG",
+    "PATH",
+    "HOME",
+    "LANG",
+    "LC_ALL",
+    "TZ",
+    "TMPDIR",
+    "PYTHONPATH",
+    "VIRTUAL_ENV",
+    "RUST_LOG",
     "RUST_BACKTRACE",
 ];
 

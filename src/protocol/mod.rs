@@ -310,14 +310,20 @@ pub fn read_result(task_dir: &Path, want: &Expectation) -> Result<ValidResult, R
     let mut arrays = BTreeMap::new();
     for (name, rel) in &parsed.outputs {
         let field = format!("outputs.{name}");
-        let path = resolve_inside(task_dir, rel).map_err(|m| ResultError::new(RESULT_PATH, &field, m))?;
-        let array = npy::read_file(&path, MAX_ARRAY_BYTES).map_err(|m| ResultError::new(rel, &field, m))?;
+        let path =
+            resolve_inside(task_dir, rel).map_err(|m| ResultError::new(RESULT_PATH, &field, m))?;
+        let array =
+            npy::read_file(&path, MAX_ARRAY_BYTES).map_err(|m| ResultError::new(rel, &field, m))?;
         arrays.insert(name.clone(), (rel.clone(), array));
     }
     let model = match &parsed.model {
         Some(rel) => {
-            let path = resolve_inside(task_dir, rel).map_err(|m| ResultError::new(RESULT_PATH, "model", m))?;
-            Some(std::fs::read(&path).map_err(|e| ResultError::new(rel, "model", format!("cannot read: {e}")))?)
+            let path = resolve_inside(task_dir, rel)
+                .map_err(|m| ResultError::new(RESULT_PATH, "model", m))?;
+            Some(
+                std::fs::read(&path)
+                    .map_err(|e| ResultError::new(rel, "model", format!("cannot read: {e}")))?,
+            )
         }
         None => None,
     };
@@ -353,7 +359,10 @@ fn read_limited(path: &Path, max: u64) -> Result<String, String> {
         return Err("is a symbolic link; tarn reads only plain files the worker wrote".into());
     }
     if meta.len() > max {
-        return Err(format!("file of {} bytes exceeds the limit of {max}", meta.len()));
+        return Err(format!(
+            "file of {} bytes exceeds the limit of {max}",
+            meta.len()
+        ));
     }
     std::fs::read_to_string(path).map_err(|e| format!("cannot read: {e}"))
 }
@@ -366,10 +375,14 @@ pub fn resolve_inside(task_dir: &Path, rel: &str) -> Result<PathBuf, String> {
         return Err("path is empty".into());
     }
     if p.is_absolute() {
-        return Err(format!("path '{rel}' is absolute; paths must be relative to the task directory"));
+        return Err(format!(
+            "path '{rel}' is absolute; paths must be relative to the task directory"
+        ));
     }
     if p.components().any(|c| matches!(c, Component::ParentDir)) {
-        return Err(format!("path '{rel}' leaves the task directory (contains '..')"));
+        return Err(format!(
+            "path '{rel}' leaves the task directory (contains '..')"
+        ));
     }
     let joined = task_dir.join(p);
     let real = joined
@@ -463,7 +476,11 @@ fn check_outputs(
             if let Some((kp, keep)) = get("keep") {
                 check_vector(kp, "keep", keep, want.n_inputs)?;
                 if let Some(i) = keep.data.iter().position(|v| *v != 0.0 && *v != 1.0) {
-                    return Err(ResultError::new(kp, "keep", format!("entry {i} is neither 0 nor 1")));
+                    return Err(ResultError::new(
+                        kp,
+                        "keep",
+                        format!("entry {i} is neither 0 nor 1"),
+                    ));
                 }
             }
         }
@@ -481,7 +498,11 @@ fn check_outputs(
                 if let Some((p, a)) = get(name) {
                     check_vector(p, name, a, want.n_known)?;
                     if let Some(i) = a.data.iter().position(|v| v.is_infinite()) {
-                        return Err(ResultError::new(p, name, format!("entry {i} is infinite; use NaN for a state not estimated")));
+                        return Err(ResultError::new(
+                            p,
+                            name,
+                            format!("entry {i} is infinite; use NaN for a state not estimated"),
+                        ));
                     }
                 }
             }
@@ -490,14 +511,23 @@ fn check_outputs(
     Ok(())
 }
 
-fn check_matrix(file: &str, name: &str, a: &Array, rows: Option<usize>, cols: usize) -> Result<usize, ResultError> {
+fn check_matrix(
+    file: &str,
+    name: &str,
+    a: &Array,
+    rows: Option<usize>,
+    cols: usize,
+) -> Result<usize, ResultError> {
     let ok = a.shape.len() == 2 && a.shape[1] == cols && rows.is_none_or(|r| a.shape[0] == r);
     if !ok {
         let want_rows = rows.map(|r| r.to_string()).unwrap_or_else(|| "n".into());
         return Err(ResultError::new(
             file,
             name,
-            format!("array has shape {:?}, expected [{want_rows}, {cols}]", a.shape),
+            format!(
+                "array has shape {:?}, expected [{want_rows}, {cols}]",
+                a.shape
+            ),
         ));
     }
     Ok(a.shape[0])
@@ -516,7 +546,11 @@ fn check_vector(file: &str, name: &str, a: &Array, len: usize) -> Result<(), Res
 
 fn check_finite(file: &str, name: &str, a: &Array) -> Result<(), ResultError> {
     if let Some(i) = a.data.iter().position(|v| !v.is_finite()) {
-        let cols = if a.shape.len() == 2 { a.shape[1].max(1) } else { 1 };
+        let cols = if a.shape.len() == 2 {
+            a.shape[1].max(1)
+        } else {
+            1
+        };
         return Err(ResultError::new(
             file,
             name,

@@ -120,11 +120,15 @@ pub fn decode(bytes: &[u8]) -> Result<Array, NpyError> {
     let (major, minor) = (bytes[6], bytes[7]);
     let (header_len, header_start) = match major {
         1 => {
-            let b = bytes.get(8..10).ok_or(NpyError::Truncated("header length"))?;
+            let b = bytes
+                .get(8..10)
+                .ok_or(NpyError::Truncated("header length"))?;
             (u16::from_le_bytes([b[0], b[1]]) as usize, 10)
         }
         2 | 3 => {
-            let b = bytes.get(8..12).ok_or(NpyError::Truncated("header length"))?;
+            let b = bytes
+                .get(8..12)
+                .ok_or(NpyError::Truncated("header length"))?;
             (u32::from_le_bytes([b[0], b[1], b[2], b[3]]) as usize, 12)
         }
         _ => return Err(NpyError::Version(major, minor)),
@@ -158,7 +162,10 @@ pub fn decode(bytes: &[u8]) -> Result<Array, NpyError> {
             got: body.len(),
         });
     }
-    let mut data: Vec<f64> = body.chunks_exact(dtype.size()).map(|c| dtype.decode(c)).collect();
+    let mut data: Vec<f64> = body
+        .chunks_exact(dtype.size())
+        .map(|c| dtype.decode(c))
+        .collect();
     if parsed.fortran_order && parsed.shape.len() > 1 {
         data = fortran_to_c(&data, &parsed.shape);
     }
@@ -258,8 +265,12 @@ fn take_quoted(s: &str) -> Option<(&str, &str)> {
 
 fn take_tuple(s: &str) -> Result<(Vec<usize>, &str), NpyError> {
     let bad = |m: &str| NpyError::Header(m.to_string());
-    let s = s.strip_prefix('(').ok_or_else(|| bad("shape is not a tuple"))?;
-    let end = s.find(')').ok_or_else(|| bad("shape tuple is not closed"))?;
+    let s = s
+        .strip_prefix('(')
+        .ok_or_else(|| bad("shape is not a tuple"))?;
+    let end = s
+        .find(')')
+        .ok_or_else(|| bad("shape tuple is not closed"))?;
     let mut dims = Vec::new();
     for part in s[..end].split(',') {
         let part = part.trim();
@@ -301,7 +312,11 @@ fn encode(shape: &[usize], descr: &str, body: impl FnOnce(&mut Vec<u8>)) -> Vec<
         1 => format!("({},)", shape[0]),
         _ => format!(
             "({})",
-            shape.iter().map(|n| n.to_string()).collect::<Vec<_>>().join(", ")
+            shape
+                .iter()
+                .map(|n| n.to_string())
+                .collect::<Vec<_>>()
+                .join(", ")
         ),
     };
     let mut header =

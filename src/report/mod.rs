@@ -103,7 +103,8 @@ pub fn tables(store: &Store) -> Result<Tables, StoreError> {
 
 /// Formats the rounds table for people.
 pub fn rounds_text(t: &Tables) -> String {
-    let mut out = String::from("round  new  states  energy evals  cumulative    cpu s   wall s  stop\n");
+    let mut out =
+        String::from("round  new  states  energy evals  cumulative    cpu s   wall s  stop\n");
     for r in &t.rounds {
         out.push_str(&format!(
             "{:>5}  {:>3}  {:>6}  {:>12}  {:>10}  {:>7.1}  {:>7.1}  {}\n",
@@ -117,7 +118,11 @@ pub fn rounds_text(t: &Tables) -> String {
             r.stop.as_deref().unwrap_or("")
         ));
         for s in &r.stages {
-            let metrics: Vec<String> = s.metrics.iter().map(|(k, v)| format!("{k}={}", short(*v))).collect();
+            let metrics: Vec<String> = s
+                .metrics
+                .iter()
+                .map(|(k, v)| format!("{k}={}", short(*v)))
+                .collect();
             out.push_str(&format!(
                 "         {:<12} {:>3} tasks {:>8} samples {:>12} evals  {}\n",
                 s.name,
@@ -145,7 +150,14 @@ pub fn states_text(t: &Tables) -> String {
         };
         out.push_str(&format!(
             "{:>5}  {:>12.6}  round {:>3}  {:<24} {:<20}  {:>12}  {:>9}  {}\n",
-            s.id, s.energy, s.found_round, s.found_task, s.found_seed, s.cost_to_find, s.sightings, f
+            s.id,
+            s.energy,
+            s.found_round,
+            s.found_task,
+            s.found_seed,
+            s.cost_to_find,
+            s.sightings,
+            f
         ));
     }
     if t.states.is_empty() {

@@ -25,15 +25,51 @@ use crate::protocol::{npy, Array, Role};
 
 /// Built-in worker kinds, by the role they can fill.
 pub const BUILTIN_KINDS: &[(Role, &str, &str)] = &[
-    (Role::Explore, "hold", "keep the walker at its start (one sample); for tests and overhead benchmarks"),
-    (Role::Explore, "metropolis", "Metropolis Monte Carlo in configuration space"),
-    (Role::Explore, "langevin", "Langevin dynamics (BAOAB) at a temperature factor"),
-    (Role::Explore, "metadynamics", "well-tempered metadynamics along collective variables"),
-    (Role::Explore, "latent-metropolis", "Metropolis Monte Carlo in the flow's latent space"),
-    (Role::Explore, "generate", "independent samples drawn from the flow, with log weights"),
-    (Role::Dedup, "quench", "quench to the local minimum (FIRE) and match fingerprints"),
-    (Role::Retrain, "realnvp", "fit a RealNVP flow to the pooled samples and the energy"),
-    (Role::Evaluate, "reweight", "reweight flow samples: ESS, free energies with error bars"),
+    (
+        Role::Explore,
+        "hold",
+        "keep the walker at its start (one sample); for tests and overhead benchmarks",
+    ),
+    (
+        Role::Explore,
+        "metropolis",
+        "Metropolis Monte Carlo in configuration space",
+    ),
+    (
+        Role::Explore,
+        "langevin",
+        "Langevin dynamics (BAOAB) at a temperature factor",
+    ),
+    (
+        Role::Explore,
+        "metadynamics",
+        "well-tempered metadynamics along collective variables",
+    ),
+    (
+        Role::Explore,
+        "latent-metropolis",
+        "Metropolis Monte Carlo in the flow's latent space",
+    ),
+    (
+        Role::Explore,
+        "generate",
+        "independent samples drawn from the flow, with log weights",
+    ),
+    (
+        Role::Dedup,
+        "quench",
+        "quench to the local minimum (FIRE) and match fingerprints",
+    ),
+    (
+        Role::Retrain,
+        "realnvp",
+        "fit a RealNVP flow to the pooled samples and the energy",
+    ),
+    (
+        Role::Evaluate,
+        "reweight",
+        "reweight flow samples: ESS, free energies with error bars",
+    ),
 ];
 
 // ---------------------------------------------------------------------------------
@@ -277,8 +313,9 @@ impl Campaign {
     /// Reads and checks a campaign file.
     pub fn load(path: &Path) -> Result<Campaign, SpecError> {
         let shown = path.display().to_string();
-        let source = std::fs::read_to_string(path)
-            .map_err(|e| SpecError::whole_file(&shown, format!("cannot read the campaign file: {e}")))?;
+        let source = std::fs::read_to_string(path).map_err(|e| {
+            SpecError::whole_file(&shown, format!("cannot read the campaign file: {e}"))
+        })?;
         let base = path
             .canonicalize()
             .ok()
@@ -290,9 +327,8 @@ impl Campaign {
     /// Parses and checks campaign text; `file` is only used in messages and `base_dir`
     /// resolves relative paths.
     pub fn parse(file: &str, source: &str, base_dir: &Path) -> Result<Campaign, SpecError> {
-        let doc = toml_edit::ImDocument::parse(source.to_string()).map_err(|e| {
-            SpecError::at(file, source, "", e.span(), syntax_message(e.message()))
-        })?;
+        let doc = toml_edit::ImDocument::parse(source.to_string())
+            .map_err(|e| SpecError::at(file, source, "", e.span(), syntax_message(e.message())))?;
         let de = toml::Deserializer::new(source);
         let raw: RawCampaign = serde_path_to_error::deserialize(de).map_err(|e| {
             let path = tidy_path(&e.path().to_string());
@@ -300,14 +336,26 @@ impl Campaign {
             let span = inner.span().or_else(|| span_of(&doc, &path));
             SpecError::at(file, source, &path, span, serde_message(inner.message()))
         })?;
-        let ctx = Ctx { file, source, doc: &doc };
+        let ctx = Ctx {
+            file,
+            source,
+            doc: &doc,
+        };
         Campaign::from_raw(raw, &ctx, source, base_dir)
     }
 
-    fn from_raw(raw: RawCampaign, ctx: &Ctx, source: &str, base_dir: &Path) -> Result<Campaign, SpecError> {
+    fn from_raw(
+        raw: RawCampaign,
+        ctx: &Ctx,
+        source: &str,
+        base_dir: &Path,
+    ) -> Result<Campaign, SpecError> {
         check_name(ctx, "name", &raw.name)?;
         if !(raw.kt.is_finite() && raw.kt > 0.0) {
-            return Err(ctx.err("kT", "must be a positive number (the temperature in the system's energy unit)"));
+            return Err(ctx.err(
+                "kT",
+                "must be a positive number (the temperature in the system's energy unit)",
+            ));
         }
         let system = check_system(ctx, &raw.system)?;
         let start = check_start(ctx, &raw.start, system.dim, base_dir)?;
@@ -373,7 +421,13 @@ struct Ctx<'a> {
 
 impl Ctx<'_> {
     fn err(&self, path: &str, message: impl Into<String>) -> SpecError {
-        SpecError::at(self.file, self.source, path, span_of(self.doc, path), message)
+        SpecError::at(
+            self.file,
+            self.source,
+            path,
+            span_of(self.doc, path),
+            message,
+        )
     }
 }
 
@@ -435,7 +489,10 @@ enum Seg<'a> {
 fn path_segments(path: &str) -> Vec<Seg<'_>> {
     let mut out = Vec::new();
     for part in path.split('.').filter(|p| !p.is_empty()) {
-        let (key, rest) = part.split_once('[').map(|(k, r)| (k, Some(r))).unwrap_or((part, None));
+        let (key, rest) = part
+            .split_once('[')
+            .map(|(k, r)| (k, Some(r)))
+            .unwrap_or((part, None));
         if !key.is_empty() {
             out.push(Seg::Key(key));
         }
@@ -453,8 +510,13 @@ fn path_segments(path: &str) -> Vec<Seg<'_>> {
 fn check_name(ctx: &Ctx, path: &str, name: &str) -> Result<(), SpecError> {
     let ok = !name.is_empty()
         && name.len() <= 64
-        && name.chars().all(|c| c.is_ascii_alphanumeric() || c == '-' || c == '_')
-        && name.chars().next().is_some_and(|c| c.is_ascii_alphanumeric());
+        && name
+            .chars()
+            .all(|c| c.is_ascii_alphanumeric() || c == '-' || c == '_')
+        && name
+            .chars()
+            .next()
+            .is_some_and(|c| c.is_ascii_alphanumeric());
     if ok {
         Ok(())
     } else {
@@ -467,9 +529,10 @@ fn check_name(ctx: &Ctx, path: &str, name: &str) -> Result<(), SpecError> {
 
 fn check_system(ctx: &Ctx, table: &toml::Table) -> Result<System, SpecError> {
     let json = toml_to_json(table);
-    let spec: crate::physics::models::SystemSpec = serde_json::from_value(json.clone())
-        .map_err(|e| ctx.err("system", format!("{e}")))?;
-    spec.validate().map_err(|e| ctx.err("system", e.to_string()))?;
+    let spec: crate::physics::models::SystemSpec =
+        serde_json::from_value(json.clone()).map_err(|e| ctx.err("system", format!("{e}")))?;
+    spec.validate()
+        .map_err(|e| ctx.err("system", e.to_string()))?;
     let dim = spec.dim();
     let model = table.get("model").and_then(|v| v.as_str()).unwrap_or("?");
     Ok(System {
@@ -482,7 +545,10 @@ fn check_system(ctx: &Ctx, table: &toml::Table) -> Result<System, SpecError> {
 fn check_start(ctx: &Ctx, start: &RawStart, dim: usize, base: &Path) -> Result<Array, SpecError> {
     match (&start.points, &start.file) {
         (Some(_), Some(_)) => Err(ctx.err("start", "give either 'points' or 'file', not both")),
-        (None, None) => Err(ctx.err("start", "give the start configurations as 'points' or as a .npy 'file'")),
+        (None, None) => Err(ctx.err(
+            "start",
+            "give the start configurations as 'points' or as a .npy 'file'",
+        )),
         (Some(points), None) => {
             if points.is_empty() {
                 return Err(ctx.err("start.points", "needs at least one configuration"));
@@ -492,7 +558,10 @@ fn check_start(ctx: &Ctx, start: &RawStart, dim: usize, base: &Path) -> Result<A
                 if p.len() != dim {
                     return Err(ctx.err(
                         &format!("start.points[{i}]"),
-                        format!("has {} coordinates, but the system has dimension {dim}", p.len()),
+                        format!(
+                            "has {} coordinates, but the system has dimension {dim}",
+                            p.len()
+                        ),
                     ));
                 }
                 if p.iter().any(|v| !v.is_finite()) {
@@ -514,64 +583,133 @@ fn check_start(ctx: &Ctx, start: &RawStart, dim: usize, base: &Path) -> Result<A
             if a.shape.len() != 2 || a.shape[1] != dim || a.shape[0] == 0 {
                 return Err(ctx.err(
                     "start.file",
-                    format!("{}: array has shape {:?}, expected [m, {dim}] with m >= 1", path.display(), a.shape),
+                    format!(
+                        "{}: array has shape {:?}, expected [m, {dim}] with m >= 1",
+                        path.display(),
+                        a.shape
+                    ),
                 ));
             }
             if a.data.iter().any(|v| !v.is_finite()) {
-                return Err(ctx.err("start.file", format!("{}: holds a non-finite value", path.display())));
+                return Err(ctx.err(
+                    "start.file",
+                    format!("{}: holds a non-finite value", path.display()),
+                ));
             }
             Ok(a)
         }
     }
 }
 
-fn check_stage(ctx: &Ctx, path: &str, role: Role, raw: RawStage, names: &mut BTreeSet<String>) -> Result<Stage, SpecError> {
-    let name = raw.name.clone().unwrap_or_else(|| role.as_str().to_string());
+fn check_stage(
+    ctx: &Ctx,
+    path: &str,
+    role: Role,
+    raw: RawStage,
+    names: &mut BTreeSet<String>,
+) -> Result<Stage, SpecError> {
+    let name = raw
+        .name
+        .clone()
+        .unwrap_or_else(|| role.as_str().to_string());
     check_name(ctx, &format!("{path}.name"), &name)?;
     if !names.insert(name.clone()) {
-        return Err(ctx.err(&format!("{path}.name"), format!("stage name '{name}' is used twice; give each stage its own name")));
+        let how = if raw.name.is_none() {
+            " (this stage's default name)"
+        } else {
+            ""
+        };
+        return Err(ctx.err(
+            &format!("{path}.name"),
+            format!("stage name '{name}'{how} is used twice; give each stage its own name"),
+        ));
     }
     let worker = match (raw.kind, raw.command) {
-        (Some(_), Some(_)) => return Err(ctx.err(path, "give either 'kind' (a built-in worker) or 'command' (your own), not both")),
-        (None, None) => return Err(ctx.err(path, format!("needs 'kind' (a built-in worker: {}) or 'command' (an argument array)", kinds_of(role).join(", ")))),
+        (Some(_), Some(_)) => {
+            return Err(ctx.err(
+                path,
+                "give either 'kind' (a built-in worker) or 'command' (your own), not both",
+            ))
+        }
+        (None, None) => {
+            return Err(ctx.err(
+                path,
+                format!(
+                    "needs 'kind' (a built-in worker: {}) or 'command' (an argument array)",
+                    kinds_of(role).join(", ")
+                ),
+            ))
+        }
         (Some(kind), None) => {
             if !kinds_of(role).contains(&kind.as_str()) {
                 return Err(ctx.err(
                     &format!("{path}.kind"),
-                    format!("'{kind}' is not a built-in {role} kind (choose one of: {})", kinds_of(role).join(", ")),
+                    format!(
+                        "'{kind}' is not a built-in {role} kind (choose one of: {})",
+                        kinds_of(role).join(", ")
+                    ),
                 ));
             }
             Worker::Builtin(kind)
         }
         (None, Some(cmd)) => {
             if cmd.is_empty() || cmd[0].is_empty() {
-                return Err(ctx.err(&format!("{path}.command"), "must name a program: [\"program\", \"arg\", ...]"));
+                return Err(ctx.err(
+                    &format!("{path}.command"),
+                    "must name a program: [\"program\", \"arg\", ...]",
+                ));
             }
             Worker::Command(cmd)
         }
     };
     let walkers = match (role, raw.walkers) {
         (Role::Explore, None) => 1,
-        (Role::Explore, Some(0)) => return Err(ctx.err(&format!("{path}.walkers"), "must be at least 1")),
-        (Role::Explore, Some(w)) if w > 10_000 => return Err(ctx.err(&format!("{path}.walkers"), "must be at most 10000")),
+        (Role::Explore, Some(0)) => {
+            return Err(ctx.err(&format!("{path}.walkers"), "must be at least 1"))
+        }
+        (Role::Explore, Some(w)) if w > 10_000 => {
+            return Err(ctx.err(&format!("{path}.walkers"), "must be at most 10000"))
+        }
         (Role::Explore, Some(w)) => w,
         (_, None) => 1,
-        (_, Some(_)) => return Err(ctx.err(&format!("{path}.walkers"), format!("only explore stages have walkers; a {role} stage runs as one task"))),
+        (_, Some(_)) => {
+            return Err(ctx.err(
+                &format!("{path}.walkers"),
+                format!("only explore stages have walkers; a {role} stage runs as one task"),
+            ))
+        }
     };
     let restart = match (role, raw.restart.as_deref()) {
         (Role::Explore, None | Some("states")) => Restart::States,
         (Role::Explore, Some("last")) => Restart::Last,
         (Role::Explore, Some("start")) => Restart::Start,
-        (Role::Explore, Some(other)) => return Err(ctx.err(&format!("{path}.restart"), format!("'{other}' is not one of: states, last, start"))),
+        (Role::Explore, Some(other)) => {
+            return Err(ctx.err(
+                &format!("{path}.restart"),
+                format!("'{other}' is not one of: states, last, start"),
+            ))
+        }
         (_, None) => Restart::Start,
-        (_, Some(_)) => return Err(ctx.err(&format!("{path}.restart"), "only explore stages have a restart rule")),
+        (_, Some(_)) => {
+            return Err(ctx.err(
+                &format!("{path}.restart"),
+                "only explore stages have a restart rule",
+            ))
+        }
     };
     let pool_limit = match (role, raw.pool_limit) {
         (Role::Retrain, None) => 50_000,
-        (Role::Retrain, Some(0)) => return Err(ctx.err(&format!("{path}.pool_limit"), "must be at least 1")),
+        (Role::Retrain, Some(0)) => {
+            return Err(ctx.err(&format!("{path}.pool_limit"), "must be at least 1"))
+        }
         (Role::Retrain, Some(n)) => n,
         (_, None) => 0,
-        (_, Some(_)) => return Err(ctx.err(&format!("{path}.pool_limit"), "only the retrain stage has a pool_limit")),
+        (_, Some(_)) => {
+            return Err(ctx.err(
+                &format!("{path}.pool_limit"),
+                "only the retrain stage has a pool_limit",
+            ))
+        }
     };
     let timeout = raw
         .timeout_seconds
@@ -591,7 +729,11 @@ fn check_stage(ctx: &Ctx, path: &str, role: Role, raw: RawStage, names: &mut BTr
 
 /// The built-in kinds that can fill `role`.
 pub fn kinds_of(role: Role) -> Vec<&'static str> {
-    BUILTIN_KINDS.iter().filter(|(r, _, _)| *r == role).map(|(_, k, _)| *k).collect()
+    BUILTIN_KINDS
+        .iter()
+        .filter(|(r, _, _)| *r == role)
+        .map(|(_, k, _)| *k)
+        .collect()
 }
 
 fn positive_seconds(ctx: &Ctx, path: &str, t: f64) -> Result<Duration, SpecError> {
@@ -631,13 +773,20 @@ fn check_stop(ctx: &Ctx, raw: RawStop) -> Result<StopRules, SpecError> {
 fn check_executor(ctx: &Ctx, raw: RawExecutor) -> Result<ExecutorSpec, SpecError> {
     let kind = raw.kind.unwrap_or_else(|| "local".into());
     if kind != "local" {
-        return Err(ctx.err("executor.kind", format!("'{kind}' is not an executor this build knows (choose: local)")));
+        return Err(ctx.err(
+            "executor.kind",
+            format!("'{kind}' is not an executor this build knows (choose: local)"),
+        ));
     }
     let max_parallel = raw.max_parallel.unwrap_or(2);
     if max_parallel == 0 || max_parallel > 1024 {
         return Err(ctx.err("executor.max_parallel", "must be between 1 and 1024"));
     }
-    let timeout = positive_seconds(ctx, "executor.timeout_seconds", raw.timeout_seconds.unwrap_or(3600.0))?;
+    let timeout = positive_seconds(
+        ctx,
+        "executor.timeout_seconds",
+        raw.timeout_seconds.unwrap_or(3600.0),
+    )?;
     let threads_per_task = raw.threads_per_task.unwrap_or(1);
     if threads_per_task == 0 || threads_per_task > 256 {
         return Err(ctx.err("executor.threads_per_task", "must be between 1 and 256"));
@@ -646,25 +795,44 @@ fn check_executor(ctx: &Ctx, raw: RawExecutor) -> Result<ExecutorSpec, SpecError
         None | Some("failed") => KeepDirs::Failed,
         Some("none") => KeepDirs::None,
         Some("all") => KeepDirs::All,
-        Some(o) => return Err(ctx.err("executor.keep_task_dirs", format!("'{o}' is not one of: none, failed, all"))),
+        Some(o) => {
+            return Err(ctx.err(
+                "executor.keep_task_dirs",
+                format!("'{o}' is not one of: none, failed, all"),
+            ))
+        }
     };
     let r = raw.retry;
     let attempts = r.attempts.unwrap_or(3);
     if attempts == 0 || attempts > 100 {
-        return Err(ctx.err("executor.retry.attempts", "must be between 1 and 100 (the first attempt counts)"));
+        return Err(ctx.err(
+            "executor.retry.attempts",
+            "must be between 1 and 100 (the first attempt counts)",
+        ));
     }
     let backoff = match r.backoff.as_deref() {
         None | Some("exponential") => Backoff::Exponential,
         Some("fixed") => Backoff::Fixed,
-        Some(o) => return Err(ctx.err("executor.retry.backoff", format!("'{o}' is not one of: exponential, fixed"))),
+        Some(o) => {
+            return Err(ctx.err(
+                "executor.retry.backoff",
+                format!("'{o}' is not one of: exponential, fixed"),
+            ))
+        }
     };
     let initial = r.initial_seconds.unwrap_or(1.0);
     if !(initial.is_finite() && (0.0..1e6).contains(&initial)) {
-        return Err(ctx.err("executor.retry.initial_seconds", "must be a number of seconds, 0 or more"));
+        return Err(ctx.err(
+            "executor.retry.initial_seconds",
+            "must be a number of seconds, 0 or more",
+        ));
     }
     let max = r.max_seconds.unwrap_or(60.0);
     if !(max.is_finite() && max >= initial && max < 1e7) {
-        return Err(ctx.err("executor.retry.max_seconds", "must be at least initial_seconds"));
+        return Err(ctx.err(
+            "executor.retry.max_seconds",
+            "must be at least initial_seconds",
+        ));
     }
     let jitter = r.jitter.unwrap_or(0.1);
     if !(0.0..1.0).contains(&jitter) {

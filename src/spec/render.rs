@@ -36,7 +36,13 @@ impl SpecError {
     }
 
     /// A problem at `span` of `source`.
-    pub fn at(file: &str, source: &str, path: &str, span: Option<Range<usize>>, message: impl Into<String>) -> Self {
+    pub fn at(
+        file: &str,
+        source: &str,
+        path: &str,
+        span: Option<Range<usize>>,
+        message: impl Into<String>,
+    ) -> Self {
         let mut e = SpecError::whole_file(file, message);
         e.path = path.to_string();
         if let Some(span) = span {
@@ -73,11 +79,17 @@ impl std::error::Error for SpecError {}
 fn locate(source: &str, span: Range<usize>) -> (usize, usize, String) {
     let start = span.start.min(source.len());
     let line_start = source[..start].rfind('\n').map(|i| i + 1).unwrap_or(0);
-    let line_end = source[start..].find('\n').map(|i| start + i).unwrap_or(source.len());
+    let line_end = source[start..]
+        .find('\n')
+        .map(|i| start + i)
+        .unwrap_or(source.len());
     let line_no = source[..line_start].matches('\n').count() + 1;
     let text = source[line_start..line_end].trim_end_matches('\r');
     let column = source[line_start..start].chars().count() + 1;
-    let width = source[start..span.end.clamp(start, line_end)].chars().count().max(1);
+    let width = source[start..span.end.clamp(start, line_end)]
+        .chars()
+        .count()
+        .max(1);
     let gutter = line_no.to_string().len();
     let excerpt = format!(
         "{pad} |\n{line_no} | {text}\n{pad} | {space}{carets}",
@@ -96,7 +108,13 @@ mod tests {
     fn caret_sits_under_the_span() {
         let src = "name = \"x\"\nwalkers = 0\n";
         let start = src.find('0').unwrap();
-        let e = SpecError::at("c.toml", src, "walkers", Some(start..start + 1), "must be at least 1");
+        let e = SpecError::at(
+            "c.toml",
+            src,
+            "walkers",
+            Some(start..start + 1),
+            "must be at least 1",
+        );
         assert_eq!(
             e.to_string(),
             "c.toml:2:11: walkers: must be at least 1\n  |\n2 | walkers = 0\n  |           ^"

@@ -54,7 +54,11 @@ pub enum StoreError {
     #[error("store {path} has schema version {found}, but this tarn reads version {SCHEMA_VERSION}; use the tarn that wrote it")]
     Schema { path: String, found: u32 },
     #[error("store {path}: record {key} is unreadable ({detail}); the store may be damaged — it was not changed")]
-    Corrupt { path: String, key: String, detail: String },
+    Corrupt {
+        path: String,
+        key: String,
+        detail: String,
+    },
     #[error("store {path} does not exist")]
     Missing { path: String },
 }
@@ -198,7 +202,10 @@ impl Store {
             .mode(sled::Mode::LowSpace)
             .open()
             .map_err(|e| match e {
-                sled::Error::Io(ref io) if io.kind() == std::io::ErrorKind::WouldBlock || io.to_string().contains("lock") => {
+                sled::Error::Io(ref io)
+                    if io.kind() == std::io::ErrorKind::WouldBlock
+                        || io.to_string().contains("lock") =>
+                {
                     StoreError::Locked {
                         path: path.display().to_string(),
                         holder: crate::engine::snapshot::holder_text(dir),
@@ -220,10 +227,18 @@ impl Store {
         let db = Store::open_db(dir)?;
         let store = Store::wrap(db, dir)?;
         let mut b = Batch::default();
-        b.inner.insert(b"mschema".to_vec(), SCHEMA_VERSION.to_be_bytes().to_vec());
+        b.inner
+            .insert(b"mschema".to_vec(), SCHEMA_VERSION.to_be_bytes().to_vec());
         b.put(b"mmeta".to_vec(), meta);
         b.put(keys::campaign(0), first);
-        b.event("created", format!("campaign {} created (file hash {})", meta.campaign, &first.hash[..12]));
+        b.event(
+            "created",
+            format!(
+                "campaign {} created (file hash {})",
+                meta.campaign,
+                &first.hash[..12]
+            ),
+        );
         store.apply(b)?;
         Ok(store)
     }
@@ -239,7 +254,10 @@ impl Store {
         let path = dir.display().to_string();
         let schema = db
             .get(b"mschema")
-            .map_err(|e| StoreError::Sled { path: path.clone(), source: e })?
+            .map_err(|e| StoreError::Sled {
+                path: path.clone(),
+                source: e,
+            })?
             .ok_or_else(|| StoreError::Corrupt {
                 path: path.clone(),
                 key: "schema".into(),
@@ -295,7 +313,9 @@ impl Store {
     /// Applies a batch atomically and flushes it to disk.
     pub fn apply(&self, mut batch: Batch) -> Result<(), StoreError> {
         for (kind, message) in std::mem::take(&mut batch.events) {
-            let seq = self.next_seq.fetch_add(1, std::sync::atomic::Ordering::SeqCst);
+            let seq = self
+                .next_seq
+                .fetch_add(1, std::sync::atomic::Ordering::SeqCst);
             let ev = EventRecord {
                 v: SCHEMA_VERSION,
                 seq,
@@ -307,7 +327,9 @@ impl Store {
             };
             batch.put(keys::event(seq), &ev);
         }
-        self.db.apply_batch(batch.inner).map_err(|e| self.sled_err(e))?;
+        self.db
+            .apply_batch(batch.inner)
+            .map_err(|e| self.sled_err(e))?;
         self.db.flush().map_err(|e| self.sled_err(e))?;
         Ok(())
     }
@@ -325,10 +347,13 @@ impl Store {
             key: printable_key(key),
             detail,
         };
-        let value: serde_json::Value = serde_json::from_slice(bytes).map_err(|e| corrupt(e.to_string()))?;
+        let value: serde_json::Value =
+            serde_json::from_slice(bytes).map_err(|e| corrupt(e.to_string()))?;
         let v = value.get("v").and_then(|v| v.as_u64());
         if v != Some(u64::from(SCHEMA_VERSION)) {
-            return Err(corrupt(format!("record version {v:?}, expected {SCHEMA_VERSION}")));
+            return Err(corrupt(format!(
+                "record version {v:?}, expected {SCHEMA_VERSION}"
+            )));
         }
         serde_json::from_value(value).map_err(|e| corrupt(e.to_string()))
     }
@@ -374,11 +399,13 @@ impl Store {
     /// Reads an array stored under a task.
     pub fn array(&self, task: &[u8; 10], name: &str) -> Result<Option<Array>, StoreError> {
         match self.blob(task, name)? {
-            Some(bytes) => npy::decode(&bytes).map(Some).map_err(|e| StoreError::Corrupt {
-                path: self.dir.display().to_string(),
-                key: format!("array {name}"),
-                detail: e.to_string(),
-            }),
+            Some(bytes) => npy::decode(&bytes)
+                .map(Some)
+                .map_err(|e| StoreError::Corrupt {
+                    path: self.dir.display().to_string(),
+                    key: format!("array {name}"),
+                    detail: e.to_string(),
+                }),
             None => Ok(None),
         }
     }
@@ -399,11 +426,13 @@ impl Store {
 
     /// The campaign file text the campaign now runs with.
     pub fn current_campaign(&self) -> Result<CampaignVersion, StoreError> {
-        self.campaign_versions()?.pop().ok_or_else(|| StoreError::Corrupt {
-            path: self.dir.display().to_string(),
-            key: "campaign".into(),
-            detail: "no campaign file stored".into(),
-        })
+        self.campaign_versions()?
+            .pop()
+            .ok_or_else(|| StoreError::Corrupt {
+                path: self.dir.display().to_string(),
+                key: "campaign".into(),
+                detail: "no campaign file stored".into(),
+            })
     }
 
     pub fn task(&self, r: u32, stage: u16, walker: u32) -> Result<Option<TaskRecord>, StoreError> {
@@ -453,12 +482,15 @@ impl Store {
     pub fn finished(&self) -> Result<Option<StopDecision>, StoreError> {
         match self.db.get(b"mfinished").map_err(|e| self.sled_err(e))? {
             Some(bytes) => {
-                let v: serde_json::Value = serde_json::from_slice(&bytes).map_err(|e| StoreError::Corrupt {
-                    path: self.dir.display().to_string(),
-                    key: "finished".into(),
-                    detail: e.to_string(),
-                })?;
-                Ok(v.get("stop").cloned().and_then(|s| serde_json::from_value(s).ok()))
+                let v: serde_json::Value =
+                    serde_json::from_slice(&bytes).map_err(|e| StoreError::Corrupt {
+                        path: self.dir.display().to_string(),
+                        key: "finished".into(),
+                        detail: e.to_string(),
+                    })?;
+                Ok(v.get("stop")
+                    .cloned()
+                    .and_then(|s| serde_json::from_value(s).ok()))
             }
             None => Ok(None),
         }
@@ -467,7 +499,10 @@ impl Store {
     /// Marks (or, with `None`, unmarks) the campaign as finished.
     pub fn put_finished(b: &mut Batch, stop: Option<&StopDecision>) {
         match stop {
-            Some(s) => b.put(b"mfinished".to_vec(), &serde_json::json!({"v": SCHEMA_VERSION, "stop": s})),
+            Some(s) => b.put(
+                b"mfinished".to_vec(),
+                &serde_json::json!({"v": SCHEMA_VERSION, "stop": s}),
+            ),
             None => b.inner.remove(b"mfinished".to_vec()),
         }
     }
@@ -536,7 +571,10 @@ impl Store {
             feed("round", science.to_string().as_bytes());
         }
         for m in self.models()? {
-            feed("model", format!("{}:{}:{}", m.round, m.task, m.sha256).as_bytes());
+            feed(
+                "model",
+                format!("{}:{}:{}", m.round, m.task, m.sha256).as_bytes(),
+            );
         }
         Ok(hex::encode(h.finalize()))
     }
@@ -544,6 +582,9 @@ impl Store {
 
 /// A key made readable for messages.
 fn printable_key(key: &[u8]) -> String {
-    let (p, rest) = key.split_first().map(|(p, r)| (*p as char, r)).unwrap_or(('?', &[]));
+    let (p, rest) = key
+        .split_first()
+        .map(|(p, r)| (*p as char, r))
+        .unwrap_or(('?', &[]));
     format!("{p}:{}", hex::encode(rest))
 }

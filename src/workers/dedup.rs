@@ -59,9 +59,15 @@ pub fn quench(task: &Task) -> Result<Output, String> {
     };
     let fp = Fingerprint::for_system(&spec);
     let n = samples.rows();
-    let batch = quench_batch(model.as_ref(), &samples.data, &fire).map_err(|e| format!("quench: {e}"))?;
+    let batch =
+        quench_batch(model.as_ref(), &samples.data, &fire).map_err(|e| format!("quench: {e}"))?;
     let mut known: Vec<(f64, Vec<f64>)> = (0..catalogue.rows())
-        .map(|i| (cat_energies.data[i], fp.compute(&catalogue.data[i * dim..(i + 1) * dim])))
+        .map(|i| {
+            (
+                cat_energies.data[i],
+                fp.compute(&catalogue.data[i * dim..(i + 1) * dim]),
+            )
+        })
         .collect();
     let n_known = known.len();
     let mut labels = Vec::with_capacity(n);
@@ -96,14 +102,19 @@ pub fn quench(task: &Task) -> Result<Output, String> {
         ..Default::default()
     };
     out.arrays.insert("labels".into(), Array::vector(labels));
-    out.arrays.insert("new_states".into(), Array::matrix(m, dim, new_states));
-    out.arrays.insert("new_energies".into(), Array::vector(new_energies));
+    out.arrays
+        .insert("new_states".into(), Array::matrix(m, dim, new_states));
+    out.arrays
+        .insert("new_energies".into(), Array::vector(new_energies));
     out.arrays.insert("keep".into(), Array::vector(keep));
     out.metrics.insert("new_states".into(), Some(m as f64));
-    out.metrics.insert("known_states".into(), Some(n_known as f64));
-    out.metrics.insert("unconverged".into(), Some(unconverged as f64));
+    out.metrics
+        .insert("known_states".into(), Some(n_known as f64));
+    out.metrics
+        .insert("unconverged".into(), Some(unconverged as f64));
     out.metrics.insert("kept".into(), Some(kept as f64));
-    out.metrics.insert("thinned".into(), Some((n - kept) as f64));
+    out.metrics
+        .insert("thinned".into(), Some((n - kept) as f64));
     Ok(out)
 }
 
@@ -128,8 +139,16 @@ fn thin(labels: &[f64], max: u64) -> Vec<f64> {
             *i += 1;
             // Keep sample idx when it is the first to reach the next multiple of
             // total/max: an even spread of exactly min(total, max) samples.
-            let keep = if total <= max { true } else { (idx * max) / total != ((idx + 1) * max) / total };
-            if keep { 1.0 } else { 0.0 }
+            let keep = if total <= max {
+                true
+            } else {
+                (idx * max) / total != ((idx + 1) * max) / total
+            };
+            if keep {
+                1.0
+            } else {
+                0.0
+            }
         })
         .collect()
 }

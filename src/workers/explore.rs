@@ -11,13 +11,16 @@ pub fn hold(task: &Task) -> Result<Output, String> {
     let start = task.input("start")?;
     let n = start.rows();
     let mut energies = vec![0.0; n];
-    model.evaluate(&start.data, &mut energies, None).map_err(|e| e.to_string())?;
+    model
+        .evaluate(&start.data, &mut energies, None)
+        .map_err(|e| e.to_string())?;
     let mut out = Output {
         energy_evals: n as u64,
         ..Default::default()
     };
     out.arrays.insert("samples".into(), start);
-    out.arrays.insert("energies".into(), Array::vector(energies));
+    out.arrays
+        .insert("energies".into(), Array::vector(energies));
     Ok(out)
 }
 

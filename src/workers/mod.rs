@@ -35,8 +35,13 @@ pub struct Task {
 impl Task {
     /// Reads an input array named in `task.json`.
     pub fn input(&self, name: &str) -> Result<Array, String> {
-        let rel = self.file.inputs.get(name).ok_or_else(|| format!("task.json names no input '{name}'"))?;
-        npy::read_file(&self.dir.join(rel), crate::protocol::MAX_ARRAY_BYTES).map_err(|e| format!("{rel}: {e}"))
+        let rel = self
+            .file
+            .inputs
+            .get(name)
+            .ok_or_else(|| format!("task.json names no input '{name}'"))?;
+        npy::read_file(&self.dir.join(rel), crate::protocol::MAX_ARRAY_BYTES)
+            .map_err(|e| format!("{rel}: {e}"))
     }
 
     /// The stage parameters as a typed struct; unknown keys are refused by the struct.
@@ -45,12 +50,14 @@ impl Task {
             serde_json::Value::Null => serde_json::json!({}),
             v => v.clone(),
         };
-        serde_json::from_value(value).map_err(|e| format!("stage '{}' params: {e}", self.file.stage))
+        serde_json::from_value(value)
+            .map_err(|e| format!("stage '{}' params: {e}", self.file.stage))
     }
 
     /// The system's built-in energy model.
     pub fn model(&self) -> Result<(SystemSpec, Box<dyn EnergyModel>), String> {
-        let spec: SystemSpec = serde_json::from_value(self.file.system.clone()).map_err(|e| format!("system: {e}"))?;
+        let spec: SystemSpec =
+            serde_json::from_value(self.file.system.clone()).map_err(|e| format!("system: {e}"))?;
         let model = spec.build().map_err(|e| format!("system: {e}"))?;
         Ok((spec, model))
     }
@@ -72,7 +79,9 @@ pub fn main(kind: &str) -> ExitCode {
         "metropolis" => explore::metropolis(&task),
         "langevin" => explore::langevin(&task),
         "quench" => dedup::quench(&task),
-        other => Err(format!("'{other}' is not a built-in worker kind this build provides")),
+        other => Err(format!(
+            "'{other}' is not a built-in worker kind this build provides"
+        )),
     };
     match result.and_then(|out| write_result(&task.dir, out)) {
         Ok(()) => ExitCode::SUCCESS,
@@ -89,7 +98,8 @@ pub fn write_result(dir: &Path, out: Output) -> Result<(), String> {
     let mut outputs = BTreeMap::new();
     for (name, array) in &out.arrays {
         let rel = format!("out/{name}.npy");
-        npy::write_file_atomic(&dir.join(&rel), &npy::encode_f64(array)).map_err(|e| format!("{rel}: {e}"))?;
+        npy::write_file_atomic(&dir.join(&rel), &npy::encode_f64(array))
+            .map_err(|e| format!("{rel}: {e}"))?;
         outputs.insert(name.clone(), rel);
     }
     let model = match &out.model {
@@ -110,7 +120,8 @@ pub fn write_result(dir: &Path, out: Output) -> Result<(), String> {
         model,
     };
     let text = serde_json::to_vec_pretty(&result).map_err(|e| e.to_string())?;
-    npy::write_file_atomic(&dir.join(crate::protocol::RESULT_PATH), &text).map_err(|e| format!("out/result.json: {e}"))
+    npy::write_file_atomic(&dir.join(crate::protocol::RESULT_PATH), &text)
+        .map_err(|e| format!("out/result.json: {e}"))
 }
 
 /// A seeded generator for a task (ChaCha8, portable across machines).

@@ -1,0 +1,160 @@
+//! Table-driven tests of broken campaign files and their exact messages.
+
+use super::*;
+
+const GOOD: &str = r#"name = "t1"
+seed = 7
+kT = 1.0
+
+[system]
+model = "muller-brown"
+
+[start]
+points = [[0.0, 0.0]]
+
+[[explore]]
+name = "hot"
+kind = "hold"
+walkers = 2
+
+[dedup]
+kind = "quench"
+"#;
+
+fn parse(text: &str) -> Result<Campaign, SpecError> {
+    Campaign::parse("c.toml", text, Path::new("."))
+}
+
+#[test]
+fn the_good_file_parses_with_its_defaults() {
+    let c = parse(GOOD).unwrap();
+    assert_eq!(c.name, "t1");
+    assert_eq!(c.system.dim, 2);
+    assert_eq!(c.explore[0].walkers, 2);
+    assert_eq!(c.dedup.name, "dedup");
+    assert_eq!(c.stop.max_rounds, 10);
+    assert_eq!(c.executor.retry.attempts, 3);
+    assert_eq!(c.stages().len(), 2);
+}
+
+#[test]
+fn broken_files_get_exact_messages() {
+    // (replace this, with that, expected message)
+    let table: &[(&str, &str, &str)] = &[
+        (
+            "walkers = 2",
+            "walkers = 0",
+            "c.toml:14:11: explore[0].walkers: must be at least 1\n   |\n14 | walkers = 0\n   |           ^",
+        ),
+        (
+            "walkers = 2",
+            "walker = 2",
+            "c.toml:14:1: explore[0].walker: unknown field `walker`, expected one of `name`, `kind`, `command`, `walkers`, `restart`, `timeout_seconds`, `pool_limit`, `params`\n   |\n14 | walker = 2\n   | ^^^^^^",
+        ),
+        (
+            "kT = 1.0",
+            "kT = -1.0",
+            "c.toml:3:6: kT: must be a positive number (the temperature in the system's energy unit)\n  |\n3 | kT = -1.0\n  |      ^^^^",
+        ),
+        (
+            "kT = 1.0",
+            "kT = \"hot\"",
+            "c.toml:3:6: kT: invalid type: string \"hot\", expected f64\n  |\n3 | kT = \"hot\"\n  |      ^^^^^",
+        ),
+        (
+            "kind = \"hold\"",
+            "kind = \"hmc\"",
+            "c.toml:13:8: explore[0].kind: 'hmc' is not a built-in explore kind (choose one of: hold, metropolis, langevin, metadynamics, latent-metropolis, generate)\n   |\n13 | kind = \"hmc\"\n   |        ^^^^^",
+        ),
+        (
+            "points = [[0.0, 0.0]]",
+            "points = [[0.0, 0.0, 1.0]]",
+            "c.toml:9:11: start.points[0]: has 3 coordinates, but the system has dimension 2\n  |\n9 | points = [[0.0, 0.0, 1.0]]\n  |           ^^^^^^^^^^^^^^^",
+        ),
+        (
+            "name = \"t1\"",
+            "name = \"my campaign\"",
+            "c.toml:1:8: name: 'my campaign' is not a valid name: use 1 to 64 letters, digits, '-' or '_', starting with a letter or digit\n  |\n1 | name = \"my campaign\"\n  |        ^^^^^^^^^^^^^",
+        ),
+        (
+            "seed = 7",
+            "seed = 7\nseed = 8",
+            "c.toml:3:1: TOML syntax error: duplicate key `seed` in document root\n  |\n3 | seed = 8\n  | ^",
+        ),
+        (
+            "[dedup]\nkind = \"quench\"",
+            "[dedup]\ncommand = []",
+            "c.toml:17:11: dedup.command: must name a program: [\"program\", \"arg\", ...]\n   |\n17 | command = []\n   |           ^^",
+        ),
+        (
+            "[dedup]\nkind = \"quench\"",
+            "[dedup]\nkind = \"quench\"\nwalkers = 2",
+            "c.toml:18:11: dedup.walkers: only explore stages have walkers; a dedup stage runs as one task\n   |\n18 | walkers = 2\n   |           ^",
+        ),
+        (
+            "model = \"muller-brown\"",
+            "model = \"lennard-jones\"\nparticles = 1\ndims = 2",
+            "c.toml:5:1: system: invalid parameter `particles`: a cluster needs at least 2 particles\n  |\n5 | [system]\n  | ^^^^^^^^",
+        ),
+        (
+            "name = \"hot\"",
+            "name = \"dedup\"",
+            "c.toml:16:1: dedup.name: stage name 'dedup' (this stage's default name) is used twice; give each stage its own name\n   |\n16 | [dedup]\n   | ^^^^^^^",
+        ),
+    ];
+    let mut wrong = Vec::new();
+    for (i, (from, to, want)) in table.iter().enumerate() {
+        assert!(
+            GOOD.contains(from),
+            "row {i}: the good file has no '{from}'"
+        );
+        let text = GOOD.replacen(from, to, 1);
+        let got = parse(&text)
+            .err()
+            .unwrap_or_else(|| panic!("row {i}: expected an error"));
+        if got.to_string() != *want {
+            wrong.push(format!(
+                "row {i}:\n got: {:?}\nwant: {want:?}",
+                got.to_string()
+            ));
+        }
+    }
+    assert!(wrong.is_empty(), "{}", wrong.join("\n"));
+}
+
+#[test]
+fn missing_sections_and_executor_limits_are_named() {
+    let no_dedup = GOOD.replace("[dedup]\nkind = \"quench\"\n", "");
+    assert!(parse(&no_dedup)
+        .unwrap_err()
+        .to_string()
+        .contains("missing field `dedup`"));
+    let bad_exec = format!("{GOOD}\n[executor]\nmax_parallel = 0\n");
+    assert!(parse(&bad_exec)
+        .unwrap_err()
+        .to_string()
+        .contains("executor.max_parallel: must be between 1 and 1024"));
+    let bad_retry = format!("{GOOD}\n[executor.retry]\nbackoff = \"random\"\n");
+    assert!(parse(&bad_retry)
+        .unwrap_err()
+        .to_string()
+        .contains("executor.retry.backoff: 'random' is not one of: exponential, fixed"));
+}
+
+#[test]
+fn retry_delays_grow_are_capped_and_jitter_is_seeded() {
+    let p = RetryPolicy {
+        attempts: 5,
+        backoff: Backoff::Exponential,
+        initial: Duration::from_secs(1),
+        max: Duration::from_secs(5),
+        jitter: 0.0,
+    };
+    let d: Vec<f64> = (2..=6).map(|a| p.delay(a, 9).as_secs_f64()).collect();
+    assert_eq!(d, vec![1.0, 2.0, 4.0, 5.0, 5.0]);
+    let j = RetryPolicy { jitter: 0.5, ..p };
+    assert_eq!(j.delay(3, 42), j.delay(3, 42));
+    assert_ne!(j.delay(3, 42), j.delay(3, 43));
+    let v = j.delay(3, 42).as_secs_f64();
+    assert!((1.0..=3.0).contains(&v), "{v}");
+}
