@@ -188,12 +188,10 @@ impl<T: Real> Flow<T> {
         Flow {
             spec: self.spec.clone(),
             frame: self.frame.clone(),
-            whitening: self.whitening.as_ref().map(|w| Whitening {
-                mean: cv(&w.mean),
-                chol: cv(&w.chol),
-                chol_inv: cv(&w.chol_inv),
-                log_det: w.log_det,
-            }),
+            whitening: self
+                .whitening
+                .as_ref()
+                .map(|w| Whitening::from_parts(cv(&w.mean), cv(&w.chol))),
             layers: self.layers.clone(),
             params: cv(&self.params),
         }
@@ -249,15 +247,23 @@ impl<T: Real> Whitening<T> {
                 "whitening: covariance is not positive definite (constant data?)".into(),
             )
         })?;
-        let inv = invert_lower(d, &chol);
-        let log_det = (0..d).map(|i| chol[i * d + i].ln()).sum();
         let cv = |v: &[f64]| v.iter().map(|&x| T::of(x)).collect::<Vec<T>>();
-        Ok(Whitening {
-            mean: cv(&mean),
-            chol: cv(&chol),
-            chol_inv: cv(&inv),
-            log_det,
-        })
+        Ok(Whitening::from_parts(cv(&mean), cv(&chol)))
+    }
+
+    /// The layer for a given mean and lower Cholesky factor (already in precision T):
+    /// the inverse and log-determinant are derived from the stored factor itself, so a
+    /// flow read back from a file is bit-identical to the one written.
+    pub(crate) fn from_parts(mean: Vec<T>, chol: Vec<T>) -> Self {
+        let d = mean.len();
+        let c64: Vec<f64> = chol.iter().map(|v| v.to64()).collect();
+        let inv = invert_lower(d, &c64);
+        Whitening {
+            mean,
+            chol,
+            chol_inv: inv.iter().map(|&x| T::of(x)).collect(),
+            log_det: (0..d).map(|i| c64[i * d + i].ln()).sum(),
+        }
     }
 }
 

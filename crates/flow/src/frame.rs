@@ -73,7 +73,7 @@ impl Frame {
                 // x_i (1-based) = sum_{k >= i} y_k / sqrt(k(k+1)) - (i-1) y_{i-1} / sqrt((i-1) i).
                 let mut suffix = 0.0f64;
                 for i in (1..=np).rev() {
-                    if i <= np - 1 {
+                    if i < np {
                         let kf = i as f64;
                         suffix += yr[(i - 1) * d + a].to64() / (kf * (kf + 1.0)).sqrt();
                     }

@@ -6,6 +6,7 @@
 
 mod flow;
 mod frame;
+mod io;
 mod real;
 mod sample;
 mod spec;
@@ -14,6 +15,7 @@ mod train;
 mod workspace;
 
 pub use flow::Flow;
+pub use io::{FORMAT_NAME, FORMAT_VERSION};
 pub use real::{exp_f32, Real};
 pub use sample::{generate, latent_metropolis, Generated, LatentMcParams, LatentMcResult};
 pub use spec::{Activation, FlowSpec, FrameSpec};

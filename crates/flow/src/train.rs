@@ -126,7 +126,8 @@ impl TrainParams {
         }
         if !(0.0..1.0).contains(&self.adam_beta1)
             || !(0.0..1.0).contains(&self.adam_beta2)
-            || !(self.adam_eps > 0.0)
+            || self.adam_eps.is_nan()
+            || self.adam_eps <= 0.0
         {
             return bad("adam_beta1 and adam_beta2 must lie in [0, 1) and adam_eps be > 0".into());
         }
@@ -220,7 +221,8 @@ impl<T: Real> Adam<T> {
             T::of(scale),
         );
         let one = T::one();
-        let job = |(((pc, gc), mc), vc): (((&mut [T], &[T]), &mut [T]), &mut [T])| {
+        type Block<'a, T> = (((&'a mut [T], &'a [T]), &'a mut [T]), &'a mut [T]);
+        let job = |(((pc, gc), mc), vc): Block<'_, T>| {
             simd(|| {
                 for (((w, &g), m), v) in pc.iter_mut().zip(gc).zip(mc.iter_mut()).zip(vc.iter_mut())
                 {

@@ -201,7 +201,7 @@ fn same_seed_same_bytes_and_other_seed_other_bytes() {
             seed,
         )
         .unwrap();
-        let bytes: Vec<u8> = flow.params().iter().flat_map(|v| v.to_le_bytes()).collect();
+        let bytes = flow.to_safetensors().unwrap();
         (bytes, rep)
     };
     let (a, ra) = run(5);

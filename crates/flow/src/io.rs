@@ -1,0 +1,350 @@
+//! The weight file: a `safetensors` byte string holding every tensor of the flow, with
+//! the architecture in the header's `__metadata__`, so that the flow can be rebuilt
+//! without tarn (see `examples_py/load_flow.py`).
+//!
+//! Metadata keys: `format` = "tarn-flow", `format_version` = "1", `architecture` = the
+//! `FlowSpec` as JSON, `convention` = a one-line statement of the direction and formulas.
+//! Tensors (dtype F32 or F64, row-major):
+//! - `coupling.{k}.cond_index`, `coupling.{k}.trans_index` (I64, [|A_k|], [|B_k|]): the
+//!   coordinates that condition and that are transformed in coupling layer k;
+//! - `coupling.{k}.dense.{l}.weight` ([n_in, n_out]) and `.bias` ([n_out]): dense layer l
+//!   of layer k's conditioner, applied as h = act(h_prev @ W + b), no activation on the
+//!   last layer, whose output is (raw s, t), each |B_k| wide;
+//! - `whitening.mean` ([D]) and `whitening.chol` ([D, D], lower triangular) when the
+//!   architecture has `whiten = true`.
+//!
+//! Reading never panics: every shape, dtype, index set and value is checked against the
+//! architecture, and sizes are bounded by the file's own length before anything is
+//! allocated.
+
+use crate::flow::{build_layout, Flow, Whitening};
+use crate::frame::Frame;
+use crate::real::Real;
+use crate::spec::FlowSpec;
+use crate::FlowError;
+use safetensors::tensor::{Dtype, SafeTensors, TensorView};
+
+/// The value of the `format` metadata key.
+pub const FORMAT_NAME: &str = "tarn-flow";
+/// The value of the `format_version` metadata key written by this version.
+pub const FORMAT_VERSION: &str = "1";
+
+const CONVENTION: &str =
+    "generative direction z -> x: per coupling k, x[B] = z[B] * exp(s) + t with \
+(raw, t) = split(MLP(z[A])), s = clamp * tanh(raw / clamp); then y = mean + chol @ w (whitening); \
+then the frame; latent z ~ N(0, tau I)";
+
+fn bad(m: impl Into<String>) -> FlowError {
+    FlowError::Format(m.into())
+}
+
+fn real_bytes<T: Real>(v: &[T]) -> Vec<u8> {
+    let mut out = Vec::with_capacity(std::mem::size_of_val(v));
+    for &x in v {
+        if T::DTYPE_NAME == "F32" {
+            out.extend_from_slice(&(x.to64() as f32).to_le_bytes());
+        } else {
+            out.extend_from_slice(&x.to64().to_le_bytes());
+        }
+    }
+    out
+}
+
+impl<T: Real> Flow<T> {
+    /// The flow as a safetensors byte string (tensors in this flow's precision).
+    pub fn to_safetensors(&self) -> Result<Vec<u8>, FlowError> {
+        let dtype = if T::DTYPE_NAME == "F32" {
+            Dtype::F32
+        } else {
+            Dtype::F64
+        };
+        let mut owned: Vec<(String, Dtype, Vec<usize>, Vec<u8>)> = Vec::new();
+        for (k, c) in self.layers.iter().enumerate() {
+            let idx = |v: &[usize]| {
+                v.iter()
+                    .flat_map(|&i| (i as i64).to_le_bytes())
+                    .collect::<Vec<u8>>()
+            };
+            owned.push((
+                format!("coupling.{k}.cond_index"),
+                Dtype::I64,
+                vec![c.cond.len()],
+                idx(&c.cond),
+            ));
+            owned.push((
+                format!("coupling.{k}.trans_index"),
+                Dtype::I64,
+                vec![c.trans.len()],
+                idx(&c.trans),
+            ));
+            for (l, d) in c.dense.iter().enumerate() {
+                let w = real_bytes(&self.params[d.w..d.w + d.n_in * d.n_out]);
+                let b = real_bytes(&self.params[d.b..d.b + d.n_out]);
+                owned.push((
+                    format!("coupling.{k}.dense.{l}.weight"),
+                    dtype,
+                    vec![d.n_in, d.n_out],
+                    w,
+                ));
+                owned.push((
+                    format!("coupling.{k}.dense.{l}.bias"),
+                    dtype,
+                    vec![d.n_out],
+                    b,
+                ));
+            }
+        }
+        if let Some(w) = &self.whitening {
+            let d = self.dim();
+            owned.push(("whitening.mean".into(), dtype, vec![d], real_bytes(&w.mean)));
+            owned.push((
+                "whitening.chol".into(),
+                dtype,
+                vec![d, d],
+                real_bytes(&w.chol),
+            ));
+        }
+        let arch = serde_json::to_string(&self.spec).map_err(|e| bad(e.to_string()))?;
+        let meta = [
+            ("format", FORMAT_NAME.to_string()),
+            ("format_version", FORMAT_VERSION.to_string()),
+            ("architecture", arch),
+            ("convention", CONVENTION.to_string()),
+        ];
+        Ok(write_safetensors(owned, &meta))
+    }
+
+    /// Reads a flow from a safetensors byte string written by `to_safetensors` (in either
+    /// precision), checking everything against the recorded architecture.
+    pub fn from_safetensors(bytes: &[u8]) -> Result<Self, FlowError> {
+        let st = SafeTensors::deserialize(bytes)
+            .map_err(|e| bad(format!("not a safetensors file: {e}")))?;
+        let (_, header) = SafeTensors::read_metadata(bytes)
+            .map_err(|e| bad(format!("unreadable header: {e}")))?;
+        let meta = header
+            .metadata()
+            .as_ref()
+            .ok_or_else(|| bad("no __metadata__ in the header"))?;
+        let get = |k: &str| {
+            meta.get(k)
+                .ok_or_else(|| bad(format!("metadata key `{k}` is missing")))
+        };
+        if get("format")? != FORMAT_NAME {
+            return Err(bad(format!(
+                "metadata `format` is `{}`, not `{FORMAT_NAME}`",
+                get("format")?
+            )));
+        }
+        if get("format_version")? != FORMAT_VERSION {
+            return Err(bad(format!(
+                "format_version `{}` is not supported (this build reads `{FORMAT_VERSION}`)",
+                get("format_version")?
+            )));
+        }
+        let spec: FlowSpec = serde_json::from_str(get("architecture")?)
+            .map_err(|e| bad(format!("metadata `architecture`: {e}")))?;
+        spec.validate()
+            .map_err(|e| bad(format!("metadata `architecture`: {e}")))?;
+        check_size_bound(&spec, bytes.len())?;
+        let (mut layers, n_params) = build_layout(&spec);
+        let mut expected: usize =
+            2 * layers.len() + layers.iter().map(|c| 2 * c.dense.len()).sum::<usize>();
+        let mut params = vec![T::zero(); n_params];
+        let d = spec.model_dim();
+        for (k, c) in layers.iter_mut().enumerate() {
+            let cond = read_index(&st, &format!("coupling.{k}.cond_index"), c.cond.len(), d)?;
+            let trans = read_index(&st, &format!("coupling.{k}.trans_index"), c.trans.len(), d)?;
+            let mut seen = vec![false; d];
+            for &i in cond.iter().chain(&trans) {
+                if std::mem::replace(&mut seen[i], true) {
+                    return Err(bad(format!(
+                        "coupling.{k}: coordinate {i} appears twice in the index sets"
+                    )));
+                }
+            }
+            c.cond = cond;
+            c.trans = trans;
+            for (l, dn) in c.dense.iter().enumerate() {
+                let w = read_real::<T>(
+                    &st,
+                    &format!("coupling.{k}.dense.{l}.weight"),
+                    &[dn.n_in, dn.n_out],
+                )?;
+                let b = read_real::<T>(&st, &format!("coupling.{k}.dense.{l}.bias"), &[dn.n_out])?;
+                params[dn.w..dn.w + w.len()].copy_from_slice(&w);
+                params[dn.b..dn.b + b.len()].copy_from_slice(&b);
+            }
+        }
+        let whitening = if spec.whiten {
+            expected += 2;
+            let mean = read_real::<f64>(&st, "whitening.mean", &[d])?;
+            let chol = read_real::<f64>(&st, "whitening.chol", &[d, d])?;
+            for i in 0..d {
+                if chol[i * d + i].is_nan() || chol[i * d + i] <= 0.0 {
+                    return Err(bad(format!("whitening.chol[{i},{i}] must be > 0")));
+                }
+                if (i + 1..d).any(|j| chol[i * d + j] != 0.0) {
+                    return Err(bad("whitening.chol must be lower triangular"));
+                }
+            }
+            let cv = |v: &[f64]| v.iter().map(|&x| T::of(x)).collect::<Vec<T>>();
+            Some(Whitening::from_parts(cv(&mean), cv(&chol)))
+        } else {
+            None
+        };
+        if st.len() != expected {
+            let names: Vec<String> = st.names().into_iter().map(str::to_string).collect();
+            return Err(bad(format!(
+                "file has {} tensors, the architecture has {expected} ({names:?})",
+                st.len()
+            )));
+        }
+        Ok(Flow {
+            frame: Frame::new(&spec.frame),
+            spec,
+            whitening,
+            layers,
+            params,
+        })
+    }
+}
+
+/// Lays out a safetensors byte string deterministically: tensors sorted by name, data
+/// in that order, the header's keys in that order (the crate's own serialiser takes the
+/// metadata as a `HashMap`, whose random order would make equal flows differ in bytes),
+/// and the header padded with spaces to a multiple of 8 bytes.
+fn write_safetensors(
+    mut tensors: Vec<(String, Dtype, Vec<usize>, Vec<u8>)>,
+    meta: &[(&str, String)],
+) -> Vec<u8> {
+    tensors.sort_by(|a, b| a.0.cmp(&b.0));
+    let mut header = serde_json::Map::new();
+    let meta_obj: serde_json::Map<String, serde_json::Value> = meta
+        .iter()
+        .map(|(k, v)| (k.to_string(), serde_json::Value::String(v.clone())))
+        .collect();
+    header.insert("__metadata__".into(), serde_json::Value::Object(meta_obj));
+    let mut offset = 0usize;
+    for (name, dtype, shape, data) in &tensors {
+        let dt = match dtype {
+            Dtype::F32 => "F32",
+            Dtype::F64 => "F64",
+            _ => "I64",
+        };
+        header.insert(
+            name.clone(),
+            serde_json::json!({"dtype": dt, "shape": shape, "data_offsets": [offset, offset + data.len()]}),
+        );
+        offset += data.len();
+    }
+    let mut hbytes =
+        serde_json::to_vec(&serde_json::Value::Object(header)).expect("a JSON map serialises");
+    while hbytes.len() % 8 != 0 {
+        hbytes.push(b' ');
+    }
+    let mut out = Vec::with_capacity(8 + hbytes.len() + offset);
+    out.extend_from_slice(&(hbytes.len() as u64).to_le_bytes());
+    out.extend_from_slice(&hbytes);
+    for (_, _, _, data) in &tensors {
+        out.extend_from_slice(data);
+    }
+    out
+}
+
+/// Refuses architectures whose tensors could not fit in a file of `len` bytes, before
+/// anything of that size is allocated (each parameter needs at least 4 bytes and each
+/// coupling index 8).
+fn check_size_bound(spec: &FlowSpec, len: usize) -> Result<(), FlowError> {
+    let d = spec.model_dim() as u128;
+    let h = spec.hidden_width as u128;
+    let nh = spec.hidden_layers as u128;
+    let a = d / 2; // both halves have at least d / 2 coordinates
+    let per_layer_params = if nh == 0 {
+        a * 2 * a + 2 * a
+    } else {
+        a * h + (nh - 1) * (h * h + h) + h + h * 2 * a + 2 * a
+    };
+    let need = spec.n_layers as u128 * (4 * per_layer_params + 8 * d);
+    if need > len as u128 {
+        return Err(bad(format!(
+            "architecture needs at least {need} bytes of tensors but the file has {len}"
+        )));
+    }
+    Ok(())
+}
+
+fn tensor<'a>(
+    st: &'a SafeTensors<'a>,
+    name: &str,
+    shape: &[usize],
+) -> Result<TensorView<'a>, FlowError> {
+    let t = st
+        .tensor(name)
+        .map_err(|_| bad(format!("tensor `{name}` is missing")))?;
+    if t.shape() != shape {
+        return Err(bad(format!(
+            "tensor `{name}` has shape {:?}, expected {shape:?}",
+            t.shape()
+        )));
+    }
+    Ok(t)
+}
+
+fn read_index(
+    st: &SafeTensors<'_>,
+    name: &str,
+    len: usize,
+    dim: usize,
+) -> Result<Vec<usize>, FlowError> {
+    let t = tensor(st, name, &[len])?;
+    if t.dtype() != Dtype::I64 {
+        return Err(bad(format!(
+            "tensor `{name}` has dtype {:?}, expected I64",
+            t.dtype()
+        )));
+    }
+    t.data()
+        .chunks_exact(8)
+        .map(|b| {
+            let v = i64::from_le_bytes(b.try_into().expect("chunks of 8"));
+            if v < 0 || v as u64 >= dim as u64 {
+                Err(bad(format!(
+                    "tensor `{name}` holds index {v} outside 0..{dim}"
+                )))
+            } else {
+                Ok(v as usize)
+            }
+        })
+        .collect()
+}
+
+fn read_real<T: Real>(
+    st: &SafeTensors<'_>,
+    name: &str,
+    shape: &[usize],
+) -> Result<Vec<T>, FlowError> {
+    let t = tensor(st, name, shape)?;
+    let vals: Vec<f64> = match t.dtype() {
+        Dtype::F32 => t
+            .data()
+            .chunks_exact(4)
+            .map(|b| f32::from_le_bytes(b.try_into().expect("4")) as f64)
+            .collect(),
+        Dtype::F64 => t
+            .data()
+            .chunks_exact(8)
+            .map(|b| f64::from_le_bytes(b.try_into().expect("8")))
+            .collect(),
+        other => {
+            return Err(bad(format!(
+                "tensor `{name}` has dtype {other:?}, expected F32 or F64"
+            )))
+        }
+    };
+    if let Some(i) = vals.iter().position(|v| !v.is_finite()) {
+        return Err(bad(format!(
+            "tensor `{name}` holds a non-finite value at flat index {i}"
+        )));
+    }
+    Ok(vals.into_iter().map(T::of).collect())
+}
