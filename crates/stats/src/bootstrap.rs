@@ -89,7 +89,7 @@ impl Interval {
 
 /// The summary of one quantity's bootstrap replicates.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
-pub struct Uncertainty {
+pub(crate) struct Uncertainty {
     /// The replicates' standard deviation (the bootstrap standard error); `None` when
     /// any replicate is infinite or there are fewer than two replicates.
     pub err: Option<f64>,

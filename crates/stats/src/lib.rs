@@ -15,7 +15,7 @@ pub mod profile;
 pub mod states;
 pub mod stop;
 
-pub use bootstrap::{BootstrapOptions, Interval, IntervalMethod, Uncertainty};
+pub use bootstrap::{standard_normal_quantile, BootstrapOptions, Interval, IntervalMethod};
 pub use error::{Result, StatsError};
 pub use logspace::{
     ess_fraction, importance_log_weights, kish_ess, log_partition_estimate, logsumexp,
