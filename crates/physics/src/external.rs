@@ -41,8 +41,9 @@
 //! tarn refuses, with a message naming what went wrong: a reply that ends early (the
 //! program died or closed its output), a wrong magic (typically a stray `print` on
 //! standard output), a different n, a non-zero status (its message is passed on), and
-//! NaN in energies or forces. Infinite energies are passed on (an explorer rejects such
-//! a proposal, as with overlapping particles of a built-in cluster). After any error the
+//! NaN in energies or forces. Infinite energies are passed on (an explorer rejects a
+//! proposal with a non-finite energy, as with overlapping particles of a built-in
+//! cluster). After any error the
 //! client refuses every later call, because the stream position is lost.
 
 use std::io::{Read, Write};

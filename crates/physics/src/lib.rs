@@ -13,6 +13,7 @@ pub mod simd;
 pub use energy::{check_batch, EnergyError, EnergyModel};
 pub use error::PhysicsError;
 pub use models::SystemSpec;
+pub mod bench;
 pub mod cv;
 pub mod explore;
 pub mod external;

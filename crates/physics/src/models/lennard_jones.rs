@@ -69,12 +69,14 @@ pub struct LennardJones {
     wall: Wall,
 }
 
-/// Floating-point operations per pair in the 3-D kernel, counted by hand from
-/// `pair_kernel` (a division counts as one, a fused multiply-add as two): 3 differences,
-/// 6 for r², 1 division, 2 for r⁻⁶, 3 for the energy, 4 for the force scalar, 3 force
-/// components, 6 accumulations.
+/// Floating-point operations per pair in the 3-D kernel when the pair has its own
+/// division, counted by hand from `pair_kernel` (a division counts as one, a fused
+/// multiply-add as two): 3 differences, 6 for r², 1 division, 2 for r⁻⁶, 3 for the
+/// energy, 4 for the force scalar, 3 force components, 6 accumulations. A pair that
+/// shares its division with a partner costs half a division and 1.5 multiplications
+/// more, i.e. one flop more; [`LennardJones::flops_per_config`] counts both kinds.
 pub const FLOPS_PER_PAIR_3D: f64 = 28.0;
-/// Floating-point operations per pair in the 2-D kernel, counted the same way.
+/// The same count for the 2-D kernel.
 pub const FLOPS_PER_PAIR_2D: f64 = 22.0;
 
 impl LennardJones {
@@ -127,6 +129,23 @@ impl LennardJones {
         self.particles * (self.particles - 1) / 2
     }
 
+    /// Floating-point operations of one energy-and-force evaluation by the hand count
+    /// of the pair kernel (the wall, usually zero-cost, is not counted).
+    pub fn flops_per_config(&self) -> f64 {
+        let single = if self.dims == 2 {
+            FLOPS_PER_PAIR_2D
+        } else {
+            FLOPS_PER_PAIR_3D
+        };
+        let mut flops = 0.0;
+        for i in 0..self.particles {
+            let partners = self.particles - i - 1;
+            let shared = partners / 2 * 2;
+            flops += shared as f64 * (single + 1.0) + (partners - shared) as f64 * single;
+        }
+        flops
+    }
+
     /// Evaluates one chunk: SIMD blocks of eight configurations through the pair
     /// kernel, then the wall per configuration.
     fn block(&self, xc: &[f64], ec: &mut [f64], mut fc: Option<&mut [f64]>) {
@@ -163,49 +182,63 @@ impl LennardJones {
         }
     }
 
-    /// The wall energy of one configuration; adds the wall's forces to `forces`.
+    /// The wall energy of one configuration; adds the wall's forces to `forces`. No
+    /// square root or allocation unless a particle is outside the radius, which keeps
+    /// the common case (every particle inside) cheap.
     fn wall_term(&self, q: &[f64], forces: Option<&mut [f64]>) -> f64 {
         if self.wall.strength == 0.0 || self.wall.radius.is_infinite() {
             return 0.0;
         }
         let d = self.dims;
-        let n = self.particles;
+        let n = self.particles as f64;
         let mut com = [0.0; 3];
-        for p in q.chunks(d) {
+        for p in q.chunks_exact(d) {
             for c in 0..d {
                 com[c] += p[c];
             }
         }
         for v in com.iter_mut() {
-            *v /= n as f64;
+            *v /= n;
         }
-        let mut w = 0.0;
+        let r_wall2 = self.wall.radius * self.wall.radius;
+        let dist2 = |p: &[f64]| {
+            (0..d)
+                .map(|c| (p[c] - com[c]) * (p[c] - com[c]))
+                .sum::<f64>()
+        };
+        if q.chunks_exact(d).all(|p| dist2(p) <= r_wall2) {
+            return 0.0;
+        }
         // g_i = dW/dx_i holding the centre of mass fixed; the true gradient subtracts
         // the mean of g because the centre of mass moves with every particle.
-        let mut g = vec![0.0; n * d];
-        let mut g_mean = [0.0; 3];
-        for (i, p) in q.chunks(d).enumerate() {
-            let mut r2 = 0.0;
-            for c in 0..d {
-                r2 += (p[c] - com[c]) * (p[c] - com[c]);
+        let g_of = |p: &[f64]| -> (f64, [f64; 3]) {
+            let r2 = dist2(p);
+            let mut g = [0.0; 3];
+            if r2 <= r_wall2 {
+                return (0.0, g);
             }
             let r = r2.sqrt();
-            if r > self.wall.radius {
-                let excess = r - self.wall.radius;
-                w += self.wall.strength * excess * excess;
-                let s = 2.0 * self.wall.strength * excess / r;
-                for c in 0..d {
-                    g[i * d + c] = s * (p[c] - com[c]);
-                    g_mean[c] += g[i * d + c] / n as f64;
-                }
+            let excess = r - self.wall.radius;
+            let s = 2.0 * self.wall.strength * excess / r;
+            for c in 0..d {
+                g[c] = s * (p[c] - com[c]);
+            }
+            (self.wall.strength * excess * excess, g)
+        };
+        let mut w = 0.0;
+        let mut g_mean = [0.0; 3];
+        for p in q.chunks_exact(d) {
+            let (wi, g) = g_of(p);
+            w += wi;
+            for c in 0..d {
+                g_mean[c] += g[c] / n;
             }
         }
         if let Some(f) = forces {
-            if w > 0.0 {
-                for i in 0..n {
-                    for c in 0..d {
-                        f[i * d + c] -= g[i * d + c] - g_mean[c];
-                    }
+            for (p, fp) in q.chunks_exact(d).zip(f.chunks_exact_mut(d)) {
+                let (_, g) = g_of(p);
+                for c in 0..d {
+                    fp[c] -= g[c] - g_mean[c];
                 }
             }
         }
@@ -248,6 +281,10 @@ dispatch_kernel!(fn pairs_simd(n: usize, d: usize, pos: &[Lanes], frc: &mut [Lan
 
 /// The Lennard-Jones pair sum over lanes: `pos[i * D + c][lane]` in, forces out in the
 /// same layout, energies returned per lane. Every loop over `lane` is element-wise.
+/// Partners j of particle i are taken two at a time so that one division serves both
+/// pairs: 1/r²_a = r²_b / (r²_a r²_b) and vice versa (division is the slowest
+/// instruction of the kernel; the products stay far from overflow for any finite
+/// cluster).
 #[inline(always)]
 fn pair_kernel<const D: usize, const FMA: bool>(
     n: usize,
@@ -261,32 +298,32 @@ fn pair_kernel<const D: usize, const FMA: bool>(
     for i in 0..n {
         let pi: [Lanes; D] = std::array::from_fn(|c| pos[i * D + c]);
         let mut fi = [[0.0; LANES]; D];
-        for j in (i + 1)..n {
-            let pj = &pos[j * D..(j + 1) * D];
-            let mut dd = [[0.0; LANES]; D];
-            let mut r2 = [0.0; LANES];
-            for c in 0..D {
-                for l in 0..LANES {
-                    let t = pi[c][l] - pj[c][l];
-                    dd[c][l] = t;
-                    r2[l] = fma::<FMA>(t, t, r2[l]);
-                }
-            }
-            let mut s = [0.0; LANES];
+        let mut j = i + 1;
+        while j + 1 < n {
+            let (da, r2a) = separation::<D, FMA>(&pi, &pos[j * D..(j + 1) * D]);
+            let (db, r2b) = separation::<D, FMA>(&pi, &pos[(j + 1) * D..(j + 2) * D]);
+            let mut inv_a = [0.0; LANES];
+            let mut inv_b = [0.0; LANES];
             for l in 0..LANES {
-                let inv2 = 1.0 / r2[l];
-                let inv6 = inv2 * inv2 * inv2;
-                e[l] = fma::<FMA>(inv6, inv6 - 1.0, e[l]);
-                s[l] = inv6 * inv2 * fma::<FMA>(48.0, inv6, -24.0);
+                let inv_ab = 1.0 / (r2a[l] * r2b[l]);
+                inv_a[l] = r2b[l] * inv_ab;
+                inv_b[l] = r2a[l] * inv_ab;
             }
-            let fj = &mut frc[j * D..(j + 1) * D];
-            for c in 0..D {
-                for l in 0..LANES {
-                    let f = s[l] * dd[c][l];
-                    fi[c][l] += f;
-                    fj[c][l] -= f;
-                }
+            let sa = pair_terms::<FMA>(&inv_a, &mut e);
+            let sb = pair_terms::<FMA>(&inv_b, &mut e);
+            let (fa, fb) = frc[j * D..(j + 2) * D].split_at_mut(D);
+            apply_pair::<D>(&sa, &da, &mut fi, fa);
+            apply_pair::<D>(&sb, &db, &mut fi, fb);
+            j += 2;
+        }
+        if j < n {
+            let (d, r2) = separation::<D, FMA>(&pi, &pos[j * D..(j + 1) * D]);
+            let mut inv = [0.0; LANES];
+            for l in 0..LANES {
+                inv[l] = 1.0 / r2[l];
             }
+            let s = pair_terms::<FMA>(&inv, &mut e);
+            apply_pair::<D>(&s, &d, &mut fi, &mut frc[j * D..(j + 1) * D]);
         }
         for c in 0..D {
             for l in 0..LANES {
@@ -298,6 +335,48 @@ fn pair_kernel<const D: usize, const FMA: bool>(
         *v *= 4.0;
     }
     e
+}
+
+/// Separation vectors x_i − x_j and squared distances, per lane.
+#[inline(always)]
+fn separation<const D: usize, const FMA: bool>(
+    pi: &[Lanes; D],
+    pj: &[Lanes],
+) -> ([Lanes; D], Lanes) {
+    let mut dd = [[0.0; LANES]; D];
+    let mut r2 = [0.0; LANES];
+    for c in 0..D {
+        for l in 0..LANES {
+            let t = pi[c][l] - pj[c][l];
+            dd[c][l] = t;
+            r2[l] = fma::<FMA>(t, t, r2[l]);
+        }
+    }
+    (dd, r2)
+}
+
+/// Adds r⁻¹² − r⁻⁶ to `e` and returns the force scalar (48 r⁻¹⁴ − 24 r⁻⁸), given 1/r².
+#[inline(always)]
+fn pair_terms<const FMA: bool>(inv2: &Lanes, e: &mut Lanes) -> Lanes {
+    let mut s = [0.0; LANES];
+    for l in 0..LANES {
+        let inv6 = inv2[l] * inv2[l] * inv2[l];
+        e[l] = fma::<FMA>(inv6, inv6 - 1.0, e[l]);
+        s[l] = inv6 * inv2[l] * fma::<FMA>(48.0, inv6, -24.0);
+    }
+    s
+}
+
+/// Accumulates the pair force s·(x_i − x_j) on i (in `fi`) and its opposite on j.
+#[inline(always)]
+fn apply_pair<const D: usize>(s: &Lanes, dd: &[Lanes; D], fi: &mut [Lanes; D], fj: &mut [Lanes]) {
+    for c in 0..D {
+        for l in 0..LANES {
+            let f = s[l] * dd[c][l];
+            fi[c][l] += f;
+            fj[c][l] -= f;
+        }
+    }
 }
 
 /// Moves one configuration of particles in `dims` dimensions into its centre-of-mass
