@@ -414,3 +414,30 @@ fn system_spec_parses_validates_and_builds() {
         toml::from_str("model = \"lennard-jones\"\nparticles = 7\ndims = 4\n").unwrap();
     assert!(bad.build().err().unwrap().to_string().contains("`dims`"));
 }
+
+#[test]
+fn default_starts_have_the_right_size_and_finite_energy() {
+    let specs = [
+        "model = \"muller-brown\"",
+        "model = \"double-well\"",
+        "model = \"lennard-jones\"\nparticles = 7\ndims = 2",
+        "model = \"lennard-jones\"\nparticles = 38\ndims = 3",
+        "model = \"lennard-jones\"\nparticles = 2\ndims = 3",
+        "model = \"phi4\"\nsize = 8\nm2 = -4.0\nlambda = 3.0",
+    ];
+    for text in specs {
+        let spec: SystemSpec = toml::from_str(text).unwrap();
+        let x = spec.default_start().unwrap();
+        assert_eq!(x.len(), spec.dim(), "{text}");
+        let e = spec.build().unwrap().energy_of(&x).unwrap();
+        assert!(e.is_finite(), "{text}: {e}");
+        if spec.particle_dims().is_some() {
+            // A compact lattice patch is bound: every pair at least a neighbour apart.
+            assert!(e < 0.0, "{text}: {e}");
+        }
+    }
+    let dw = DoubleWell::default();
+    let r = double_well_reference(1.0);
+    assert!((dw.saddle_x() - r.x_saddle).abs() < 1e-15);
+    assert!((dw.right_minimum_x() - r.right_minimum[0]).abs() < 1e-15);
+}

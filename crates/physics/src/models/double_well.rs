@@ -64,6 +64,21 @@ impl DoubleWell {
         (v, [gx, gy])
     }
 
+    /// The x coordinate of the left minimum (y = 0 there).
+    pub fn left_minimum_x(&self) -> f64 {
+        self.stationary_x(-1.0)
+    }
+
+    /// The x coordinate of the right minimum.
+    pub fn right_minimum_x(&self) -> f64 {
+        self.stationary_x(1.0)
+    }
+
+    /// The x coordinate of the saddle, which divides the two states.
+    pub fn saddle_x(&self) -> f64 {
+        self.stationary_x(0.0)
+    }
+
     /// The x coordinate near `x0` where the profile U(x, 0) is stationary, by Newton's
     /// method on 4h x(x² − 1) − t = 0 (minima and the saddle all lie on y = 0).
     fn stationary_x(&self, x0: f64) -> f64 {

@@ -459,3 +459,45 @@ pub fn centred_hexagon_7(nn: f64) -> Vec<f64> {
     }
     x
 }
+
+/// A compact cluster of `particles` particles: the lattice sites (triangular lattice in
+/// 2-D, fcc in 3-D, nearest neighbours `nn` apart) closest to the origin, ties broken by
+/// coordinates so the choice is deterministic, moved to the centre-of-mass frame. A
+/// start for explorers of any cluster size.
+pub fn compact_cluster(particles: usize, dims: usize, nn: f64) -> Vec<f64> {
+    let reach = (particles as f64).powf(1.0 / dims.max(1) as f64).ceil() as i64 + 2;
+    let mut sites: Vec<Vec<f64>> = Vec::new();
+    if dims == 2 {
+        for i in -reach..=reach {
+            for j in -reach..=reach {
+                let (a, b) = (i as f64, j as f64);
+                sites.push(vec![nn * (a + 0.5 * b), nn * b * 3f64.sqrt() / 2.0]);
+            }
+        }
+    } else {
+        // fcc: integer points with even coordinate sum, nearest neighbours √2 apart.
+        let scale = nn / 2f64.sqrt();
+        for i in -2 * reach..=2 * reach {
+            for j in -2 * reach..=2 * reach {
+                for k in -2 * reach..=2 * reach {
+                    if (i + j + k).rem_euclid(2) == 0 {
+                        sites.push(vec![i as f64 * scale, j as f64 * scale, k as f64 * scale]);
+                    }
+                }
+            }
+        }
+    }
+    let norm2 = |p: &Vec<f64>| p.iter().map(|v| v * v).sum::<f64>();
+    sites.sort_by(|a, b| {
+        norm2(a).total_cmp(&norm2(b)).then_with(|| {
+            a.iter()
+                .zip(b)
+                .map(|(x, y)| x.total_cmp(y))
+                .find(|o| o.is_ne())
+                .unwrap_or(std::cmp::Ordering::Equal)
+        })
+    });
+    let mut x: Vec<f64> = sites.into_iter().take(particles).flatten().collect();
+    centre_of_mass_frame(&mut x, dims);
+    x
+}

@@ -214,6 +214,49 @@ impl SystemSpec {
         }
     }
 
+    /// The particles' spatial dimension for clusters (translation is a zero mode), and
+    /// `None` for every other system.
+    pub fn particle_dims(&self) -> Option<usize> {
+        match self {
+            SystemSpec::LennardJones { dims, .. } => Some(*dims),
+            _ => None,
+        }
+    }
+
+    /// A sensible start configuration for explorers of a built-in system: a minimum
+    /// of Müller–Brown (the deepest, A) and of the double well (the left one), a compact
+    /// lattice patch for clusters (triangular in 2-D, fcc in 3-D, nearest neighbours
+    /// 2^{1/6} apart, centred), and the positive ordered field ±sqrt(−m²/2λ) for φ⁴ in
+    /// its broken phase (zero otherwise). External systems have none.
+    pub fn default_start(&self) -> Result<Vec<f64>, PhysicsError> {
+        self.validate()?;
+        Ok(match self {
+            SystemSpec::MullerBrown {} => vec![-0.558224, 1.441726],
+            SystemSpec::DoubleWell {} => {
+                let r = double_well::DoubleWell::default();
+                vec![r.left_minimum_x(), 0.0]
+            }
+            SystemSpec::LennardJones {
+                particles, dims, ..
+            } => lennard_jones::compact_cluster(*particles, *dims, 2f64.powf(1.0 / 6.0)),
+            SystemSpec::Phi4 { size, m2, lambda } => {
+                let phi0 = if *m2 < 0.0 && *lambda > 0.0 {
+                    (-m2 / (2.0 * lambda)).sqrt()
+                } else {
+                    0.0
+                };
+                vec![phi0; size * size]
+            }
+            SystemSpec::External { .. } => {
+                return Err(PhysicsError::InvalidParameter {
+                    name: "start",
+                    reason: "an external system has no built-in start configuration; give one"
+                        .into(),
+                })
+            }
+        })
+    }
+
     /// Builds a built-in model. The external model is a process and is built by tarn's
     /// process code, so it gives [`PhysicsError::ExternalNotBuiltHere`].
     pub fn build(&self) -> Result<Box<dyn EnergyModel>, PhysicsError> {
