@@ -12,12 +12,20 @@
 pub enum EnergyError {
     /// The input slice is not a whole number of configurations.
     #[error("energy model input has {got} values, not a multiple of dim {dim}")]
-    Shape { dim: usize, got: usize },
+    Shape {
+        /// The model's dimension.
+        dim: usize,
+        /// Length of the input slice.
+        got: usize,
+    },
     /// An output slice is too short for the batch that was asked for.
     #[error("energy model output `{what}` has room for {got} values, the batch needs {need}")]
     OutputShape {
+        /// Which output (`energy` or `forces`).
         what: &'static str,
+        /// Values the batch needs.
         need: usize,
+        /// Values the slice has room for.
         got: usize,
     },
     /// The external model failed; the message says how (died, wrong size, garbage).

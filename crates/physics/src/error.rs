@@ -13,13 +13,28 @@ pub enum PhysicsError {
     Energy(#[from] EnergyError),
     /// A parameter is outside its valid range.
     #[error("invalid parameter `{name}`: {reason}")]
-    InvalidParameter { name: &'static str, reason: String },
+    InvalidParameter {
+        /// The parameter's key as written in a campaign file.
+        name: &'static str,
+        /// What is wrong with it.
+        reason: String,
+    },
     /// A start configuration does not have the model's dimension.
     #[error("start configuration has {got} values, the model has dim {dim}")]
-    StartShape { dim: usize, got: usize },
+    StartShape {
+        /// The model's dimension.
+        dim: usize,
+        /// Values given.
+        got: usize,
+    },
     /// The energy or the forces became non-finite (for example a too large time step).
     #[error("non-finite energy or force at step {step} of {what}")]
-    NonFinite { what: &'static str, step: u64 },
+    NonFinite {
+        /// Which computation (e.g. `langevin`).
+        what: &'static str,
+        /// The step at which it happened (0: the start).
+        step: u64,
+    },
     /// The external model is a process that the engine starts; this crate only speaks
     /// its framing (see [`crate::external`]).
     #[error("the external energy model is started by tarn's process code, not built by SystemSpec::build; use external::ExternalClient over the process's pipes")]

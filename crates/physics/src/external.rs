@@ -73,15 +73,20 @@ pub enum FramingError {
     /// An I/O error other than end of stream.
     #[error("pipe to the energy program failed while {what}: {source}")]
     Io {
+        /// What was being done.
         what: &'static str,
+        /// The underlying error.
         #[source]
         source: std::io::Error,
     },
     /// The frame does not start with the magic.
     #[error("{what} does not start with magic {expected:?} but with bytes {got:02x?}; is something else writing to the energy program's standard output (a print statement)?")]
     Magic {
+        /// `request` or `reply`.
         what: &'static str,
+        /// The magic that should be there.
         expected: String,
+        /// The first four bytes that were there.
         got: [u8; 4],
     },
     /// The request speaks another framing version.
@@ -89,13 +94,28 @@ pub enum FramingError {
     Version(u32),
     /// The reply's size does not match the request.
     #[error("the energy program answered {got} configurations to a request of {want}")]
-    Size { want: u64, got: u64 },
+    Size {
+        /// Configurations requested.
+        want: u64,
+        /// Configurations answered.
+        got: u64,
+    },
     /// The program reported a failure.
     #[error("the energy program reported failure (status {status}): {message}")]
-    Status { status: u32, message: String },
+    Status {
+        /// The non-zero status.
+        status: u32,
+        /// The program's message.
+        message: String,
+    },
     /// A reply held NaN.
     #[error("the energy program returned NaN in the {what} of configuration {index}")]
-    NaN { what: &'static str, index: usize },
+    NaN {
+        /// `energy` or `forces`.
+        what: &'static str,
+        /// The configuration's index in the request.
+        index: usize,
+    },
     /// A header field is out of range.
     #[error("malformed frame: {0}")]
     Malformed(String),

@@ -5,6 +5,8 @@
 //! knows about tokio, sled, files, task directories or the worker protocol.
 //! Must not touch: the store, the engine, the file system, processes.
 
+#![warn(missing_docs)]
+
 pub mod energy;
 pub mod error;
 pub mod models;
