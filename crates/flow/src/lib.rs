@@ -4,6 +4,7 @@
 //! Owns: flow architecture, training, latent-space Metropolis, generation, weight files'
 //! byte format. Must not touch: the store, the engine, tokio, task directories.
 
+pub mod bench;
 mod flow;
 mod frame;
 mod io;

@@ -72,46 +72,56 @@ pub fn exp_f32(x: f32) -> f32 {
     const LN2_HI: f32 = 0.693_145_75;
     const LN2_LO: f32 = 1.428_606_8e-6;
     const ROUND: f32 = 12_582_912.0; // 1.5 * 2^23: adding it rounds to an integer.
-    let x = x.clamp(-87.0, 88.0);
-    let n = (x * LOG2E + ROUND) - ROUND;
+    let x = x.max(-87.0).min(88.0);
+    let shifted = x * LOG2E + ROUND;
+    let n = shifted - ROUND;
     let r = x - n * LN2_HI - n * LN2_LO;
     let p = 1.0
         + r * (1.0
             + r * (0.5
                 + r * (1.0 / 6.0 + r * (1.0 / 24.0 + r * (1.0 / 120.0 + r * (1.0 / 720.0))))));
-    let bits = ((n as i32 + 127) as u32) << 23;
+    // The integer n sits in the low mantissa bits of `shifted`; integer arithmetic on
+    // the bit patterns (unlike a saturating float-to-int cast) vectorises.
+    let n_bits = shifted.to_bits().wrapping_sub(ROUND.to_bits());
+    let bits = n_bits.wrapping_add(127) << 23;
     p * f32::from_bits(bits)
 }
 
-/// Runs `f` inside a function compiled for the best vector extension the CPU has.
-/// The closure is inlined there, so generic loops in it are vectorised for that ISA.
-#[inline(always)]
-pub(crate) fn simd<R>(f: impl FnOnce() -> R) -> R {
-    #[cfg(target_arch = "x86_64")]
-    {
-        if std::is_x86_feature_detected!("avx512f") {
-            // SAFETY: the CPU supports AVX-512F, checked just above.
-            return unsafe { run_avx512(f) };
+/// Defines `pub(crate) fn $name<T: Real>(args)` that runs the `#[inline(always)]`
+/// function `$inner` inside a copy compiled for AVX-512 or AVX2+FMA when the CPU has it
+/// (checked at run time, a cached flag), so that generic element-wise loops are
+/// vectorised for that ISA without `-C target-cpu=native`.
+macro_rules! multiversion {
+    ($(#[$m:meta])* fn $name:ident<$T:ident>($($arg:ident: $ty:ty),* $(,)?) $(-> $ret:ty)? = $inner:ident;) => {
+        $(#[$m])*
+        #[allow(clippy::too_many_arguments)]
+        pub(crate) fn $name<$T: $crate::real::Real>($($arg: $ty),*) $(-> $ret)? {
+            #[cfg(target_arch = "x86_64")]
+            {
+                #[target_feature(enable = "avx512f,avx512vl,avx512dq,avx2,fma")]
+                #[allow(clippy::too_many_arguments)]
+                unsafe fn v4<$T: $crate::real::Real>($($arg: $ty),*) $(-> $ret)? {
+                    $inner::<$T>($($arg),*)
+                }
+                #[target_feature(enable = "avx2,fma")]
+                #[allow(clippy::too_many_arguments)]
+                unsafe fn v3<$T: $crate::real::Real>($($arg: $ty),*) $(-> $ret)? {
+                    $inner::<$T>($($arg),*)
+                }
+                if std::is_x86_feature_detected!("avx512f") {
+                    // SAFETY: the CPU supports AVX-512F (checked just above).
+                    return unsafe { v4::<$T>($($arg),*) };
+                }
+                if std::is_x86_feature_detected!("avx2") && std::is_x86_feature_detected!("fma") {
+                    // SAFETY: the CPU supports AVX2 and FMA (checked just above).
+                    return unsafe { v3::<$T>($($arg),*) };
+                }
+            }
+            $inner::<$T>($($arg),*)
         }
-        if std::is_x86_feature_detected!("avx2") && std::is_x86_feature_detected!("fma") {
-            // SAFETY: the CPU supports AVX2 and FMA, checked just above.
-            return unsafe { run_avx2(f) };
-        }
-    }
-    f()
+    };
 }
-
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx512f,avx512vl,avx512dq,avx2,fma")]
-unsafe fn run_avx512<R>(f: impl FnOnce() -> R) -> R {
-    f()
-}
-
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2,fma")]
-unsafe fn run_avx2<R>(f: impl FnOnce() -> R) -> R {
-    f()
-}
+pub(crate) use multiversion;
 
 /// `c = a * b` (or `c += a * b` when `accumulate`), on `threads` threads of the current
 /// rayon pool when `threads > 1`, all row-major with the given row
@@ -183,9 +193,176 @@ pub(crate) fn matmul<T: Real>(
     }
 }
 
-/// Adds `bias` to every row of `buf` (`rows` x `bias.len()`), then applies `act` in
-/// place, keeping in `aux` what the backward pass needs (the sigmoid for SiLU).
-pub(crate) fn bias_act_forward<T: Real>(
+/// Largest inner, outer or row dimension that `matmul_thin` handles itself.
+const THIN: usize = 8;
+
+/// `matmul` with a fast path for thin products (a dimension of at most 8, as in the
+/// first and last layers of a narrow conditioner), where a general GEMM spends most of
+/// its time on packing and edge handling. `scratch` holds small transposed copies; it
+/// grows once and is then reused, so steady-state calls do not allocate.
+#[allow(clippy::too_many_arguments)]
+pub(crate) fn matmul_s<T: Real>(
+    m: usize,
+    n: usize,
+    k: usize,
+    a: &[T],
+    a_t: bool,
+    b: &[T],
+    b_t: bool,
+    c: &mut [T],
+    accumulate: bool,
+    threads: usize,
+    scratch: &mut Vec<T>,
+) {
+    let thin = k > 0 && (k <= THIN || n <= THIN || m <= THIN);
+    if threads > 1 || !thin || (a_t && b_t) {
+        return matmul(m, n, k, a, a_t, b, b_t, c, accumulate, threads);
+    }
+    assert!(a.len() >= m * k && b.len() >= k * n && c.len() >= m * n);
+    if !accumulate {
+        c[..m * n].fill(T::zero());
+    }
+    if !a_t && k <= THIN {
+        // c_i += sum_p a[i,p] * opB[p,:], with opB's rows contiguous.
+        let rows: &[T] = if b_t {
+            transpose_into(n, k, b, scratch);
+            scratch
+        } else {
+            b
+        };
+        thin_k(m, n, k, a, rows, c);
+    } else if !a_t && n <= THIN {
+        // c[i,j] += dot(a_i, opB[:,j]), with opB's columns contiguous.
+        let cols: &[T] = if b_t {
+            b
+        } else {
+            transpose_into(k, n, b, scratch);
+            scratch
+        };
+        thin_n(m, n, k, a, cols, c);
+    } else if a_t && m <= THIN {
+        // a is stored k x m: c_i += sum_r a[r,i] * b[r,:].
+        thin_m_at(m, n, k, a, b, c);
+    } else if a_t && n <= THIN {
+        // a is stored k x m, b is k x n: c^T accumulates rows of a, then is added to c.
+        scratch.clear();
+        scratch.resize(n * m, T::zero());
+        thin_n_at(m, n, k, a, b, scratch);
+        for i in 0..m {
+            for j in 0..n {
+                c[i * n + j] += scratch[j * m + i];
+            }
+        }
+    } else {
+        matmul(m, n, k, a, a_t, b, b_t, c, true, threads);
+    }
+}
+
+/// Writes the transpose of the `rows` x `cols` row-major matrix `x` into `out`.
+fn transpose_into<T: Real>(rows: usize, cols: usize, x: &[T], out: &mut Vec<T>) {
+    out.clear();
+    out.resize(rows * cols, T::zero());
+    for r in 0..rows {
+        for q in 0..cols {
+            out[q * rows + r] = x[r * cols + q];
+        }
+    }
+}
+
+multiversion! {
+    /// c (m x n) += a (m x k) * b (k x n) for small k: one scaled row of b per term.
+    fn thin_k<T>(m: usize, n: usize, k: usize, a: &[T], b: &[T], c: &mut [T]) = thin_k_k;
+}
+
+#[inline(always)]
+fn thin_k_k<T: Real>(m: usize, n: usize, k: usize, a: &[T], b: &[T], c: &mut [T]) {
+    for i in 0..m {
+        let crow = &mut c[i * n..(i + 1) * n];
+        for p in 0..k {
+            let s = a[i * k + p];
+            for (cv, &bv) in crow.iter_mut().zip(&b[p * n..(p + 1) * n]) {
+                *cv += s * bv;
+            }
+        }
+    }
+}
+
+multiversion! {
+    /// c (m x n) += a (m x k) * bt^T for small n, bt (n x k) holding b's columns: dot
+    /// products summed in 16 fixed lanes (vectorised and reproducible).
+    fn thin_n<T>(m: usize, n: usize, k: usize, a: &[T], bt: &[T], c: &mut [T]) = thin_n_k;
+}
+
+#[inline(always)]
+fn thin_n_k<T: Real>(m: usize, n: usize, k: usize, a: &[T], bt: &[T], c: &mut [T]) {
+    for i in 0..m {
+        let arow = &a[i * k..(i + 1) * k];
+        for j in 0..n {
+            let brow = &bt[j * k..(j + 1) * k];
+            let mut lanes = [T::zero(); 16];
+            let mut ac = arow.chunks_exact(16);
+            let mut bc = brow.chunks_exact(16);
+            for (x, y) in (&mut ac).zip(&mut bc) {
+                for l in 0..16 {
+                    lanes[l] += x[l] * y[l];
+                }
+            }
+            let mut sum = T::zero();
+            for (x, y) in ac.remainder().iter().zip(bc.remainder()) {
+                sum += *x * *y;
+            }
+            for l in lanes {
+                sum += l;
+            }
+            c[i * n + j] += sum;
+        }
+    }
+}
+
+multiversion! {
+    /// c (m x n) += a^T b for small m, a stored k x m, b stored k x n.
+    fn thin_m_at<T>(m: usize, n: usize, k: usize, a: &[T], b: &[T], c: &mut [T]) = thin_m_at_k;
+}
+
+#[inline(always)]
+fn thin_m_at_k<T: Real>(m: usize, n: usize, k: usize, a: &[T], b: &[T], c: &mut [T]) {
+    for r in 0..k {
+        let brow = &b[r * n..(r + 1) * n];
+        for i in 0..m {
+            let s = a[r * m + i];
+            for (cv, &bv) in c[i * n..(i + 1) * n].iter_mut().zip(brow) {
+                *cv += s * bv;
+            }
+        }
+    }
+}
+
+multiversion! {
+    /// ct (n x m) += b^T a for small n, a stored k x m, b stored k x n (so ct = (a^T b)^T).
+    fn thin_n_at<T>(m: usize, n: usize, k: usize, a: &[T], b: &[T], ct: &mut [T]) = thin_n_at_k;
+}
+
+#[inline(always)]
+fn thin_n_at_k<T: Real>(m: usize, n: usize, k: usize, a: &[T], b: &[T], ct: &mut [T]) {
+    for r in 0..k {
+        let arow = &a[r * m..(r + 1) * m];
+        for j in 0..n {
+            let s = b[r * n + j];
+            for (cv, &av) in ct[j * m..(j + 1) * m].iter_mut().zip(arow) {
+                *cv += s * av;
+            }
+        }
+    }
+}
+
+multiversion! {
+    /// Adds `bias` to every row of `buf` (`rows` x `bias.len()`), then applies `act` in
+    /// place, keeping in `aux` what the backward pass needs (the sigmoid for SiLU).
+    fn bias_act_forward<T>(act: Option<Activation>, rows: usize, bias: &[T], buf: &mut [T], aux: &mut [T]) = bias_act_forward_k;
+}
+
+#[inline(always)]
+fn bias_act_forward_k<T: Real>(
     act: Option<Activation>,
     rows: usize,
     bias: &[T],
@@ -193,45 +370,48 @@ pub(crate) fn bias_act_forward<T: Real>(
     aux: &mut [T],
 ) {
     let cols = bias.len();
-    simd(|| {
-        for i in 0..rows {
-            let row = &mut buf[i * cols..(i + 1) * cols];
-            match act {
-                None => {
-                    for (v, &b) in row.iter_mut().zip(bias) {
-                        *v += b;
-                    }
+    for i in 0..rows {
+        let row = &mut buf[i * cols..(i + 1) * cols];
+        match act {
+            None => {
+                for (v, &b) in row.iter_mut().zip(bias) {
+                    *v += b;
                 }
-                Some(Activation::Silu) => {
-                    let arow = &mut aux[i * cols..(i + 1) * cols];
-                    for ((v, a), &b) in row.iter_mut().zip(arow.iter_mut()).zip(bias) {
-                        let p = *v + b;
-                        let sig = T::one() / (T::one() + (-p).fexp());
-                        *a = sig;
-                        *v = p * sig;
-                    }
+            }
+            Some(Activation::Silu) => {
+                let arow = &mut aux[i * cols..(i + 1) * cols];
+                for ((v, a), &b) in row.iter_mut().zip(arow.iter_mut()).zip(bias) {
+                    let p = *v + b;
+                    let sig = T::one() / (T::one() + (-p).fexp());
+                    *a = sig;
+                    *v = p * sig;
                 }
-                Some(Activation::Tanh) => {
-                    for (v, &b) in row.iter_mut().zip(bias) {
-                        *v = tanh_fast(*v + b);
-                    }
+            }
+            Some(Activation::Tanh) => {
+                for (v, &b) in row.iter_mut().zip(bias) {
+                    *v = tanh_fast(*v + b);
                 }
-                Some(Activation::Relu) => {
-                    for (v, &b) in row.iter_mut().zip(bias) {
-                        let p = *v + b;
-                        *v = if p > T::zero() { p } else { T::zero() };
-                    }
+            }
+            Some(Activation::Relu) => {
+                for (v, &b) in row.iter_mut().zip(bias) {
+                    let p = *v + b;
+                    *v = if p > T::zero() { p } else { T::zero() };
                 }
             }
         }
-    })
+    }
 }
 
-/// Turns the gradient with respect to an activation's output into the gradient with
-/// respect to its input, in place: `grad *= act'(pre)`, from the stored output `post`
-/// (and sigmoid `aux` for SiLU: d/dp [p s(p)] = s + h (1 - s) with h = p s).
-pub(crate) fn act_backward<T: Real>(act: Activation, post: &[T], aux: &[T], grad: &mut [T]) {
-    simd(|| match act {
+multiversion! {
+    /// Turns the gradient with respect to an activation's output into the gradient with
+    /// respect to its input, in place: `grad *= act'(pre)`, from the stored output `post`
+    /// (and sigmoid `aux` for SiLU: d/dp [p s(p)] = s + h (1 - s) with h = p s).
+    fn act_backward<T>(act: Activation, post: &[T], aux: &[T], grad: &mut [T]) = act_backward_k;
+}
+
+#[inline(always)]
+fn act_backward_k<T: Real>(act: Activation, post: &[T], aux: &[T], grad: &mut [T]) {
+    match act {
         Activation::Silu => {
             for ((g, &h), &s) in grad.iter_mut().zip(post).zip(aux) {
                 *g *= s + h * (T::one() - s);
@@ -249,19 +429,34 @@ pub(crate) fn act_backward<T: Real>(act: Activation, post: &[T], aux: &[T], grad
                 }
             }
         }
-    })
+    }
 }
 
-/// Adds the column sums of `g` (`rows` x `acc.len()`) to `acc` (a bias gradient).
-pub(crate) fn add_col_sums<T: Real>(rows: usize, g: &[T], acc: &mut [T]) {
+multiversion! {
+    /// Adds the column sums of `g` (`rows` x `acc.len()`) to `acc` (a bias gradient).
+    fn add_col_sums<T>(rows: usize, g: &[T], acc: &mut [T]) = add_col_sums_k;
+}
+
+#[inline(always)]
+fn add_col_sums_k<T: Real>(rows: usize, g: &[T], acc: &mut [T]) {
     let cols = acc.len();
-    simd(|| {
-        for i in 0..rows {
-            for (a, &v) in acc.iter_mut().zip(&g[i * cols..(i + 1) * cols]) {
-                *a += v;
-            }
+    for i in 0..rows {
+        for (a, &v) in acc.iter_mut().zip(&g[i * cols..(i + 1) * cols]) {
+            *a += v;
         }
-    })
+    }
+}
+
+multiversion! {
+    /// `acc[i] += x[i]` element-wise.
+    fn add_assign<T>(acc: &mut [T], x: &[T]) = add_assign_k;
+}
+
+#[inline(always)]
+fn add_assign_k<T: Real>(acc: &mut [T], x: &[T]) {
+    for (a, &v) in acc.iter_mut().zip(x) {
+        *a += v;
+    }
 }
 
 /// tanh through the fast exponential: 1 - 2 / (1 + e^{2x}). Its absolute error near
@@ -291,6 +486,45 @@ mod tests {
             x += 0.0137;
         }
         assert!(worst < 5e-7, "worst relative error {worst}");
+    }
+
+    #[test]
+    fn thin_paths_agree_with_the_general_product() {
+        let mut scratch = Vec::new();
+        for &(m, n, k) in &[
+            (37, 64, 1),
+            (37, 2, 64),
+            (2, 40, 33),
+            (40, 3, 50),
+            (5, 5, 5),
+            (64, 1, 9),
+        ] {
+            for (a_t, b_t) in [(false, false), (false, true), (true, false)] {
+                let a: Vec<f64> = (0..m * k).map(|i| (i as f64 * 0.71).sin()).collect();
+                let b: Vec<f64> = (0..k * n).map(|i| (i as f64 * 0.13).cos()).collect();
+                let mut want = vec![0.5; m * n];
+                let mut got = want.clone();
+                matmul(m, n, k, &a, a_t, &b, b_t, &mut want, true, 1);
+                matmul_s(m, n, k, &a, a_t, &b, b_t, &mut got, true, 1, &mut scratch);
+                let err = want
+                    .iter()
+                    .zip(&got)
+                    .map(|(x, y)| (x - y).abs())
+                    .fold(0.0, f64::max);
+                assert!(err < 1e-12, "{m}x{n}x{k} a_t={a_t} b_t={b_t}: {err}");
+                matmul_s(m, n, k, &a, a_t, &b, b_t, &mut got, false, 1, &mut scratch);
+                matmul(m, n, k, &a, a_t, &b, b_t, &mut want, false, 1);
+                let err = want
+                    .iter()
+                    .zip(&got)
+                    .map(|(x, y)| (x - y).abs())
+                    .fold(0.0, f64::max);
+                assert!(
+                    err < 1e-12,
+                    "overwrite {m}x{n}x{k} a_t={a_t} b_t={b_t}: {err}"
+                );
+            }
+        }
     }
 
     #[test]

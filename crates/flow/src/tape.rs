@@ -16,7 +16,9 @@
 //!   gradients and g_a, which is added to the gradient of the conditioning half.
 
 use crate::flow::{Coupling, Flow};
-use crate::real::{act_backward, add_col_sums, bias_act_forward, matmul, simd, tanh_fast, Real};
+use crate::real::{
+    act_backward, add_col_sums, bias_act_forward, matmul, matmul_s, multiversion, tanh_fast, Real,
+};
 use crate::spec::Activation;
 
 /// The per-layer part of a tape.
@@ -59,6 +61,8 @@ pub(crate) struct Tape<T> {
     /// Whether each dense layer's gradient has been written since the last reset (the
     /// first write overwrites, so gradients never need zeroing).
     pub written: Vec<bool>,
+    /// Small transposed copies for thin matrix products.
+    scratch: Vec<T>,
     /// The error a closure met on this chunk, checked in chunk order afterwards.
     pub err: Option<crate::FlowError>,
     /// Rows this chunk processed since the workspace last reset it.
@@ -109,6 +113,7 @@ impl<T: Real> Tape<T> {
             f64: vec![0.0; cap * dx],
             stats: [0.0; 4],
             written: vec![false; flow.layers.iter().map(|c| c.dense.len()).sum()],
+            scratch: Vec::new(),
             err: None,
             rows_done: 0,
         }
@@ -279,7 +284,7 @@ impl<T: Real> Tape<T> {
         let c = &flow.layers[k];
         let d = flow.dim();
         let lt = &mut self.layers[k];
-        let (da, db) = (c.cond.len(), c.trans.len());
+        let da = c.cond.len();
         for i in 0..n {
             let row = &self.state[i * d..(i + 1) * d];
             for (dst, &j) in lt.a_in[i * da..(i + 1) * da].iter_mut().zip(&c.cond) {
@@ -293,34 +298,21 @@ impl<T: Real> Tape<T> {
             n,
             lt,
             self.gemm_threads,
+            &mut self.scratch,
         );
         let clamp = T::of(flow.spec.clamp);
-        let inv_clamp = T::one() / clamp;
-        let (state, logdet) = (&mut self.state, &mut self.logdet);
-        simd(|| {
-            for i in 0..n {
-                let out = &lt.out[i * 2 * db..(i + 1) * 2 * db];
-                let srow = &mut lt.s[i * db..(i + 1) * db];
-                let brow = &mut lt.b_out[i * db..(i + 1) * db];
-                let row = &mut state[i * d..(i + 1) * d];
-                let mut sum = T::zero();
-                for j in 0..db {
-                    let s = clamp * tanh_fast(out[j] * inv_clamp);
-                    let t = out[db + j];
-                    let b = row[c.trans[j]];
-                    let bn = if gen {
-                        b * s.fexp() + t
-                    } else {
-                        (b - t) * (-s).fexp()
-                    };
-                    row[c.trans[j]] = bn;
-                    srow[j] = s;
-                    brow[j] = bn;
-                    sum += s;
-                }
-                logdet[i] += if gen { sum } else { -sum };
-            }
-        });
+        coupling_elementwise(
+            n,
+            d,
+            &c.trans,
+            gen,
+            clamp,
+            &lt.out,
+            &mut lt.s,
+            &mut lt.b_out,
+            &mut self.state,
+            &mut self.logdet,
+        );
     }
 
     /// Backward of one coupling layer (see the module doc for the formulas).
@@ -337,38 +329,24 @@ impl<T: Real> Tape<T> {
     ) {
         let c = &flow.layers[k];
         let d = flow.dim();
-        let (da, db) = (c.cond.len(), c.trans.len());
+        let da = c.cond.len();
         let clamp = T::of(flow.spec.clamp);
-        let inv_clamp = T::one() / clamp;
-        {
-            let lt = &self.layers[k];
-            let grad = &mut self.grad;
-            let dout = &mut self.bufs[0];
-            simd(|| {
-                for i in 0..n {
-                    let out = &lt.out[i * 2 * db..(i + 1) * 2 * db];
-                    let srow = &lt.s[i * db..(i + 1) * db];
-                    let brow = &lt.b_out[i * db..(i + 1) * db];
-                    let grow = &mut grad[i * d..(i + 1) * d];
-                    let drow = &mut dout[i * 2 * db..(i + 1) * 2 * db];
-                    for j in 0..db {
-                        let s = srow[j];
-                        let g = grow[c.trans[j]];
-                        let (gb, gt, gs) = if gen {
-                            let e = s.fexp();
-                            (g * e, g, g * (brow[j] - out[db + j]) + alpha)
-                        } else {
-                            let e = (-s).fexp();
-                            (g * e, -(g * e), -(g * brow[j]) + alpha)
-                        };
-                        let q = s * inv_clamp;
-                        grow[c.trans[j]] = gb;
-                        drow[j] = gs * (T::one() - q * q);
-                        drow[db + j] = gt;
-                    }
-                }
-            });
-        }
+        let lt = &self.layers[k];
+        let (dout, gbuf) = pair_mut(&mut self.bufs, 0, 1);
+        coupling_backward_elementwise(
+            n,
+            d,
+            &c.trans,
+            gen,
+            alpha,
+            clamp,
+            &lt.out,
+            &lt.s,
+            &lt.b_out,
+            &mut self.grad,
+            dout,
+            gbuf,
+        );
         let first_dense: usize = flow.layers[..k].iter().map(|l| l.dense.len()).sum();
         let written = &mut self.written[first_dense..first_dense + c.dense.len()];
         mlp_backward(
@@ -383,6 +361,7 @@ impl<T: Real> Tape<T> {
             input_grad,
             written,
             self.gemm_threads,
+            &mut self.scratch,
         );
         if input_grad {
             for i in 0..n {
@@ -391,6 +370,152 @@ impl<T: Real> Tape<T> {
                     grow[j] += g;
                 }
             }
+        }
+    }
+}
+
+multiversion! {
+    /// The affine transform of coupling layer rows: s = clamp tanh(raw / clamp), then
+    /// b' = b e^s + t (generation) or (b - t) e^-s (inversion) on the `trans` columns of
+    /// `state`, recording s and b' and adding +-sum(s) to each row's log-determinant.
+    fn coupling_elementwise<T>(
+        n: usize,
+        d: usize,
+        trans: &[usize],
+        gen: bool,
+        clamp: T,
+        out: &[T],
+        s_buf: &mut [T],
+        b_out: &mut [T],
+        state: &mut [T],
+        logdet: &mut [T],
+    ) = coupling_elementwise_k;
+}
+
+#[allow(clippy::too_many_arguments)]
+#[inline(always)]
+fn coupling_elementwise_k<T: Real>(
+    n: usize,
+    d: usize,
+    trans: &[usize],
+    gen: bool,
+    clamp: T,
+    out: &[T],
+    s_buf: &mut [T],
+    b_out: &mut [T],
+    state: &mut [T],
+    logdet: &mut [T],
+) {
+    let db = trans.len();
+    let inv_clamp = T::one() / clamp;
+    for i in 0..n {
+        let orow = &out[i * 2 * db..(i + 1) * 2 * db];
+        let (rrow, trow) = orow.split_at(db);
+        let srow = &mut s_buf[i * db..(i + 1) * db];
+        let brow = &mut b_out[i * db..(i + 1) * db];
+        let row = &mut state[i * d..(i + 1) * d];
+        // Gather, transform contiguously (vectorised), scatter.
+        for (b, &j) in brow.iter_mut().zip(trans) {
+            *b = row[j];
+        }
+        let mut lanes = [T::zero(); 8];
+        for ((((sc, bc), rc), tc), _) in srow
+            .chunks_mut(8)
+            .zip(brow.chunks_mut(8))
+            .zip(rrow.chunks(8))
+            .zip(trow.chunks(8))
+            .zip(0..)
+        {
+            for l in 0..sc.len() {
+                let s = clamp * tanh_fast(rc[l] * inv_clamp);
+                bc[l] = if gen {
+                    bc[l] * s.fexp() + tc[l]
+                } else {
+                    (bc[l] - tc[l]) * (-s).fexp()
+                };
+                sc[l] = s;
+                lanes[l] += s;
+            }
+        }
+        for (&b, &j) in brow.iter().zip(trans) {
+            row[j] = b;
+        }
+        let sum = lanes.iter().fold(T::zero(), |a, &b| a + b);
+        logdet[i] += if gen { sum } else { -sum };
+    }
+}
+
+multiversion! {
+    /// The element-wise part of a coupling layer's backward pass (formulas in the module
+    /// doc): replaces the transformed columns of `grad` by g_b and writes (g_r, g_t) rows
+    /// into `dout`.
+    fn coupling_backward_elementwise<T>(
+        n: usize,
+        d: usize,
+        trans: &[usize],
+        gen: bool,
+        alpha: T,
+        clamp: T,
+        out: &[T],
+        s_buf: &[T],
+        b_out: &[T],
+        grad: &mut [T],
+        dout: &mut [T],
+        gbuf: &mut [T],
+    ) = coupling_backward_elementwise_k;
+}
+
+#[allow(clippy::too_many_arguments)]
+#[inline(always)]
+fn coupling_backward_elementwise_k<T: Real>(
+    n: usize,
+    d: usize,
+    trans: &[usize],
+    gen: bool,
+    alpha: T,
+    clamp: T,
+    out: &[T],
+    s_buf: &[T],
+    b_out: &[T],
+    grad: &mut [T],
+    dout: &mut [T],
+    gbuf: &mut [T],
+) {
+    let db = trans.len();
+    let inv_clamp = T::one() / clamp;
+    for i in 0..n {
+        let trow = &out[i * 2 * db + db..(i + 1) * 2 * db];
+        let srow = &s_buf[i * db..(i + 1) * db];
+        let brow = &b_out[i * db..(i + 1) * db];
+        let grow = &mut grad[i * d..(i + 1) * d];
+        let (gr, gt) = dout[i * 2 * db..(i + 1) * 2 * db].split_at_mut(db);
+        let gg = &mut gbuf[i * db..(i + 1) * db];
+        // Gather g', compute contiguously (vectorised), scatter g_b.
+        for (g, &j) in gg.iter_mut().zip(trans) {
+            *g = grow[j];
+        }
+        for (((((gr, gt), gg), &s), &bn), &t) in gr
+            .iter_mut()
+            .zip(gt.iter_mut())
+            .zip(gg.iter_mut())
+            .zip(srow)
+            .zip(brow)
+            .zip(trow)
+        {
+            let g = *gg;
+            let q = s * inv_clamp;
+            let (gb, gs, gtv) = if gen {
+                (g * s.fexp(), g * (bn - t) + alpha, g)
+            } else {
+                let gb = g * (-s).fexp();
+                (gb, -(g * bn) + alpha, -gb)
+            };
+            *gr = gs * (T::one() - q * q);
+            *gt = gtv;
+            *gg = gb;
+        }
+        for (&g, &j) in gg.iter().zip(trans) {
+            grow[j] = g;
         }
     }
 }
@@ -404,6 +529,7 @@ fn mlp_forward<T: Real>(
     n: usize,
     lt: &mut LayerTape<T>,
     threads: usize,
+    scratch: &mut Vec<T>,
 ) {
     let nd = c.dense.len();
     for (l, dn) in c.dense.iter().enumerate() {
@@ -412,7 +538,7 @@ fn mlp_forward<T: Real>(
         let (prev, rest) = lt.hidden.split_at_mut(l.min(nd - 1));
         let input: &[T] = if l == 0 { &lt.a_in } else { &prev[l - 1] };
         if l + 1 == nd {
-            matmul(
+            matmul_s(
                 n,
                 dn.n_out,
                 dn.n_in,
@@ -423,12 +549,13 @@ fn mlp_forward<T: Real>(
                 &mut lt.out,
                 false,
                 threads,
+                scratch,
             );
             bias_act_forward(None, n, b, &mut lt.out, &mut []);
         } else {
             let out = &mut rest[0];
-            matmul(
-                n, dn.n_out, dn.n_in, input, false, w, false, out, false, threads,
+            matmul_s(
+                n, dn.n_out, dn.n_in, input, false, w, false, out, false, threads, scratch,
             );
             bias_act_forward(Some(act), n, b, out, &mut lt.aux[l]);
         }
@@ -464,6 +591,7 @@ fn mlp_backward<T: Real>(
     input_grad: bool,
     written: &mut [bool],
     threads: usize,
+    scratch: &mut Vec<T>,
 ) {
     let nd = c.dense.len();
     let mut cur = 0;
@@ -479,8 +607,8 @@ fn mlp_backward<T: Real>(
         let acc = written[l];
         written[l] = true;
         let (wg, bg) = pgrad[dn.w..dn.b + dn.n_out].split_at_mut(dn.n_in * dn.n_out);
-        matmul(
-            dn.n_in, dn.n_out, n, input, true, g, false, wg, acc, threads,
+        matmul_s(
+            dn.n_in, dn.n_out, n, input, true, g, false, wg, acc, threads, scratch,
         );
         if !acc {
             bg.fill(T::zero());
@@ -488,10 +616,14 @@ fn mlp_backward<T: Real>(
         add_col_sums(n, g, bg);
         let w = &params[dn.w..dn.w + dn.n_in * dn.n_out];
         if l > 0 {
-            matmul(n, dn.n_in, dn.n_out, g, false, w, true, nxt, false, threads);
+            matmul_s(
+                n, dn.n_in, dn.n_out, g, false, w, true, nxt, false, threads, scratch,
+            );
             cur = next;
         } else if input_grad {
-            matmul(n, dn.n_in, dn.n_out, g, false, w, true, da, false, threads);
+            matmul_s(
+                n, dn.n_in, dn.n_out, g, false, w, true, da, false, threads, scratch,
+            );
         }
     }
 }

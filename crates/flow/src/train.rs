@@ -16,7 +16,7 @@
 //! bytes.
 
 use crate::flow::Flow;
-use crate::real::{simd, Real};
+use crate::real::{multiversion, Real};
 use crate::workspace::{KlTerm, Threading, Workspace};
 use crate::FlowError;
 use rand::seq::SliceRandom;
@@ -220,18 +220,9 @@ impl<T: Real> Adam<T> {
             T::of(p.adam_eps),
             T::of(scale),
         );
-        let one = T::one();
         type Block<'a, T> = (((&'a mut [T], &'a [T]), &'a mut [T]), &'a mut [T]);
         let job = |(((pc, gc), mc), vc): Block<'_, T>| {
-            simd(|| {
-                for (((w, &g), m), v) in pc.iter_mut().zip(gc).zip(mc.iter_mut()).zip(vc.iter_mut())
-                {
-                    let g = g * scale;
-                    *m = b1 * *m + (one - b1) * g;
-                    *v = b2 * *v + (one - b2) * g * g;
-                    *w -= lr_t * *m / (v.sqrt() + eps);
-                }
-            })
+            adam_block(pc, gc, mc, vc, b1, b2, lr_t, eps, scale)
         };
         let (m, v) = (&mut self.m, &mut self.v);
         ws.install(|| {
@@ -243,6 +234,61 @@ impl<T: Real> Adam<T> {
                 .for_each(job)
         });
     }
+}
+
+multiversion! {
+    /// Adam's update of one block: m, v moving averages of g = scale * grad, then
+    /// w -= lr_t m / (sqrt(v) + eps) with the bias corrections folded into lr_t.
+    fn adam_block<T>(w: &mut [T], grad: &[T], m: &mut [T], v: &mut [T], b1: T, b2: T, lr_t: T, eps: T, scale: T) = adam_block_k;
+}
+
+#[allow(clippy::too_many_arguments)]
+#[inline(always)]
+fn adam_block_k<T: Real>(
+    w: &mut [T],
+    grad: &[T],
+    m: &mut [T],
+    v: &mut [T],
+    b1: T,
+    b2: T,
+    lr_t: T,
+    eps: T,
+    scale: T,
+) {
+    let one = T::one();
+    for (((w, &g), m), v) in w.iter_mut().zip(grad).zip(m.iter_mut()).zip(v.iter_mut()) {
+        let g = g * scale;
+        *m = b1 * *m + (one - b1) * g;
+        *v = b2 * *v + (one - b2) * g * g;
+        *w -= lr_t * *m / (v.sqrt() + eps);
+    }
+}
+
+multiversion! {
+    /// `out = a x + b y` (y empty: `out = a x`) and the squared norm of `out`, summed in
+    /// 16 fixed lanes so that the loop vectorises and the result is reproducible.
+    fn combine_block<T>(out: &mut [T], a: T, x: &[T], b: T, y: &[T]) -> f64 = combine_block_k;
+}
+
+#[inline(always)]
+fn combine_block_k<T: Real>(out: &mut [T], a: T, x: &[T], b: T, y: &[T]) -> f64 {
+    let mut lanes = [T::zero(); 16];
+    if y.is_empty() {
+        for (oc, xc) in out.chunks_mut(16).zip(x.chunks(16)) {
+            for ((o, &u), l) in oc.iter_mut().zip(xc).zip(lanes.iter_mut()) {
+                *o = a * u;
+                *l += *o * *o;
+            }
+        }
+    } else {
+        for ((oc, xc), yc) in out.chunks_mut(16).zip(x.chunks(16)).zip(y.chunks(16)) {
+            for (((o, &u), &w), l) in oc.iter_mut().zip(xc).zip(yc).zip(lanes.iter_mut()) {
+                *o = a * u + b * w;
+                *l += *o * *o;
+            }
+        }
+    }
+    lanes.iter().map(|l| l.to64()).sum()
 }
 
 /// `out = a * x + b * y` element-wise and the squared norm of `out` (summed per fixed
@@ -262,25 +308,9 @@ pub(crate) fn combine<T: Real>(
             .enumerate()
             .map(|(i, o)| {
                 let off = i * BLOCK;
-                let xs = &x[off..off + o.len()];
-                simd(|| {
-                    let mut s = 0.0f64;
-                    match y {
-                        Some(y) => {
-                            for ((o, &u), &w) in o.iter_mut().zip(xs).zip(&y[off..off + xs.len()]) {
-                                *o = a * u + b * w;
-                                s += (*o * *o).to64();
-                            }
-                        }
-                        None => {
-                            for (o, &u) in o.iter_mut().zip(xs) {
-                                *o = a * u;
-                                s += (*o * *o).to64();
-                            }
-                        }
-                    }
-                    s
-                })
+                let len = o.len();
+                let ys = y.map_or(&[][..], |y| &y[off..off + len]);
+                combine_block(o, a, &x[off..off + len], b, ys)
             })
             .collect();
         parts.iter().sum()

@@ -10,7 +10,7 @@
 //! scheduling.
 
 use crate::flow::Flow;
-use crate::real::{simd, Real};
+use crate::real::{add_assign, Real};
 use crate::tape::Tape;
 use crate::FlowError;
 use rayon::prelude::*;
@@ -238,14 +238,10 @@ impl<T: Real> Workspace<T> {
         let grads = &self.grads;
         let sum_into = |(i, o): (usize, &mut [T])| {
             let off = i * REDUCE_CHUNK;
-            simd(|| {
-                for &c in &used {
-                    let len = o.len();
-                    for (a, &g) in o.iter_mut().zip(&grads[c][off..off + len]) {
-                        *a += g;
-                    }
-                }
-            })
+            for &c in &used {
+                let len = o.len();
+                add_assign(o, &grads[c][off..off + len]);
+            }
         };
         match &self.pool {
             Some(pool) => pool.install(|| {
