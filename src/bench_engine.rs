@@ -1,6 +1,223 @@
-//! The engine benchmark: orchestration overhead per task against a bare spawn, the time
-//! to reopen a long campaign, and the engine's peak memory.
+//! The engine benchmark: orchestration overhead per task against a bare spawn of the
+//! same worker, the time to reopen a long campaign and reach its first new task, and the
+//! engine's peak memory as the campaign grows.
+//!
+//! All figures come from one run on this machine; compare them as ratios within a run,
+//! not as absolute times across days.
 
-pub fn run(_json: bool, _tasks: u32) -> anyhow::Result<u8> {
-    anyhow::bail!("the engine benchmark is being written")
+use std::path::Path;
+use std::process::{Command, Stdio};
+use std::time::Instant;
+
+use anyhow::Context;
+use serde::Serialize;
+
+use crate::engine::{self, inputs, RunOptions, StopLevel};
+use crate::spec::Campaign;
+
+#[derive(Serialize)]
+struct Row {
+    bench: &'static str,
+    #[serde(flatten)]
+    figures: serde_json::Value,
+}
+
+fn campaign_text(name: &str, walkers: u32, rounds: u32, parallel: u32) -> String {
+    format!(
+        r#"name = "{name}"
+seed = 1
+kT = 10.0
+[system]
+model = "muller-brown"
+[start]
+points = [[-0.558, 1.442]]
+[[explore]]
+name = "idle"
+kind = "hold"
+walkers = {walkers}
+restart = "start"
+[dedup]
+kind = "quench"
+[stop]
+max_rounds = {rounds}
+[executor]
+max_parallel = {parallel}
+keep_task_dirs = "none"
+"#
+    )
+}
+
+/// Runs a campaign in this process (so that this process's peak memory is the engine's).
+fn run_in_process(dir: &Path, file: &Path, accept_change: bool) -> anyhow::Result<()> {
+    let campaign = Campaign::load(file).map_err(|e| anyhow::anyhow!("{e}"))?;
+    let opts = RunOptions {
+        state_dir: dir.join("state"),
+        accept_change,
+        quiet: true,
+        exe: std::env::current_exe()?,
+    };
+    let store = engine::open_for_run(&campaign, file, &opts)?;
+    let rt = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()?;
+    let (_tx, rx) = tokio::sync::watch::channel(StopLevel::Run);
+    let end = rt.block_on(engine::run(campaign, store, &opts, rx))?;
+    anyhow::ensure!(
+        matches!(end, engine::RunEnd::Finished(_)),
+        "benchmark campaign ended with {end:?}"
+    );
+    Ok(())
+}
+
+/// Peak resident memory of this process so far, in MB (Linux VmHWM).
+fn peak_rss_mb() -> f64 {
+    std::fs::read_to_string("/proc/self/status")
+        .ok()
+        .and_then(|s| {
+            s.lines()
+                .find(|l| l.starts_with("VmHWM:"))
+                .and_then(|l| l.split_whitespace().nth(1))
+                .and_then(|v| v.parse::<f64>().ok())
+        })
+        .map(|kb| kb / 1024.0)
+        .unwrap_or(f64::NAN)
+}
+
+/// Time of `n` sequential spawns of `tarn work hold` on one prepared task directory.
+fn bare_spawns(task_dir: &Path, n: u32) -> anyhow::Result<f64> {
+    let exe = std::env::current_exe()?;
+    let t = Instant::now();
+    for _ in 0..n {
+        let status = Command::new(&exe)
+            .args(["work", "hold"])
+            .current_dir(task_dir)
+            .env("TARN_TASK", task_dir.join("task.json"))
+            .stdout(Stdio::null())
+            .stderr(Stdio::null())
+            .status()?;
+        anyhow::ensure!(status.success(), "bare worker failed");
+    }
+    Ok(t.elapsed().as_secs_f64())
+}
+
+/// Runs the engine benchmark.
+pub fn run(json: bool, tasks: u32) -> anyhow::Result<u8> {
+    let tmp = std::env::temp_dir().join(format!("tarn-bench-{}", std::process::id()));
+    std::fs::create_dir_all(&tmp)?;
+    let result = measure(&tmp, tasks, json);
+    let _ = std::fs::remove_dir_all(&tmp);
+    result
+}
+
+fn emit(json: bool, row: Row) {
+    if json {
+        println!("{}", serde_json::to_string(&row).expect("json"));
+    } else {
+        println!("{:<10} {}", row.bench, row.figures);
+    }
+}
+
+fn measure(tmp: &Path, tasks: u32, json: bool) -> anyhow::Result<u8> {
+    // 1. Overhead per task, one task at a time, against the same worker spawned bare.
+    let file = tmp.join("overhead.toml");
+    std::fs::write(&file, campaign_text("overhead", tasks, 1, 1))?;
+    let t = Instant::now();
+    run_in_process(tmp, &file, false)?;
+    let engine_total = t.elapsed().as_secs_f64();
+    let store = crate::store::Store::open(&tmp.join("state/overhead")).context("reopen")?;
+    let dedup_wall: f64 = store
+        .round_tasks(1)?
+        .iter()
+        .filter(|t| t.role == crate::protocol::Role::Dedup)
+        .flat_map(|t| t.attempts.iter().map(|a| a.wall_seconds))
+        .sum();
+    // A task directory exactly like the engine's, for the bare spawns.
+    let c = Campaign::load(&file).map_err(|e| anyhow::anyhow!("{e}"))?;
+    let task_dir = tmp.join("bare");
+    std::fs::create_dir_all(task_dir.join("in"))?;
+    std::fs::create_dir_all(task_dir.join("out"))?;
+    let stage = &c.explore[0];
+    let tref = inputs::TaskRef::new(&c, 1, 0, stage, 0);
+    let prepared = inputs::prepare(&store, &c, stage, &tref)?;
+    std::fs::write(
+        task_dir.join("in/start.npy"),
+        crate::protocol::npy::encode_f64(&prepared.inputs["start"]),
+    )?;
+    let task_json = serde_json::json!({
+        "protocol": 1, "task_id": tref.id, "campaign": c.name, "round": 1, "stage": stage.name,
+        "role": "explore", "kind": "hold", "walker": 0, "walkers": 1, "seed": tref.seed, "kT": c.kt,
+        "threads": 1, "system": c.system.table, "params": {}, "inputs": {"start": "in/start.npy"}, "model": null
+    });
+    std::fs::write(task_dir.join("task.json"), serde_json::to_vec(&task_json)?)?;
+    drop(store);
+    let bare = bare_spawns(&task_dir, tasks)?;
+    let engine_explore = engine_total - dedup_wall;
+    let per_task = engine_explore / f64::from(tasks) * 1e3;
+    let per_spawn = bare / f64::from(tasks) * 1e3;
+    emit(
+        json,
+        Row {
+            bench: "overhead",
+            figures: serde_json::json!({
+                "tasks": tasks, "max_parallel": 1,
+                "engine_ms_per_task": round3(per_task), "bare_spawn_ms": round3(per_spawn),
+                "overhead_ms_per_task": round3(per_task - per_spawn),
+                "note": "engine time excludes the round's one dedup task; includes task directories, task.json, inputs, validation, durable commit"
+            }),
+        },
+    );
+
+    // 2. A long campaign: memory at 200 and at 1000 rounds, then the reopen time.
+    let file = tmp.join("long.toml");
+    std::fs::write(&file, campaign_text("long", 1, 200, 1))?;
+    let t = Instant::now();
+    run_in_process(tmp, &file, false)?;
+    let rss_200 = peak_rss_mb();
+    std::fs::write(&file, campaign_text("long", 1, 1000, 1))?;
+    run_in_process(tmp, &file, true)?;
+    let build = t.elapsed().as_secs_f64();
+    let rss_1000 = peak_rss_mb();
+    let opts = RunOptions {
+        state_dir: tmp.join("state"),
+        accept_change: false,
+        quiet: true,
+        exe: std::env::current_exe()?,
+    };
+    let t = Instant::now();
+    let (campaign, store) = engine::open_for_resume("long", &opts)?;
+    let rounds = store.rounds()?;
+    let next = rounds.last().map(|r| r.round + 1).unwrap_or(1);
+    let _ = store.states()?;
+    let stage = &campaign.explore[0];
+    let tref = inputs::TaskRef::new(&campaign, next, 0, stage, 0);
+    let _ = store.task(next, 0, 0)?;
+    let _ = inputs::prepare(&store, &campaign, stage, &tref)?;
+    let reopen = t.elapsed().as_secs_f64();
+    emit(
+        json,
+        Row {
+            bench: "reopen",
+            figures: serde_json::json!({
+                "rounds": rounds.len(), "reopen_to_first_task_s": round3(reopen),
+                "store_mb": round3(store.size_on_disk() as f64 / 1e6), "build_s": round3(build),
+            }),
+        },
+    );
+    emit(
+        json,
+        Row {
+            bench: "memory",
+            figures: serde_json::json!({
+                "peak_rss_mb_after_200_rounds": round3(rss_200),
+                "peak_rss_mb_after_1000_rounds": round3(rss_1000),
+                "sled_cache_cap_mb": crate::store::CACHE_BYTES / (1 << 20),
+            }),
+        },
+    );
+    Ok(0)
+}
+
+fn round3(v: f64) -> f64 {
+    (v * 1000.0).round() / 1000.0
 }

@@ -221,9 +221,10 @@ pub async fn run(
         exe: opts.exe.clone(),
         dir,
     });
+    let run_id = uuid::Uuid::new_v4();
     ctx.store.log_event(
         "started",
-        format!("engine started (pid {})", std::process::id()),
+        format!("engine run {run_id} started (pid {})", std::process::id()),
     )?;
     let end = round_loop(&ctx).await;
     let end = match end {

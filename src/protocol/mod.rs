@@ -5,100 +5,9 @@
 //! Must not touch: the store (the engine commits what this module has validated) and
 //! processes (the executor runs workers).
 //!
-//! # How a task runs
+//! The specification below is `docs/worker-protocol.md`, included here.
 //!
-//! For every task tarn makes a fresh task directory, writes `task.json` and the input
-//! arrays under `in/`, creates an empty `out/`, and starts the worker with its working
-//! directory set to the task directory and the environment variable `TARN_TASK` set to
-//! the absolute path of `task.json`. The worker writes its arrays under `out/`, then
-//! `out/result.json`, and exits with status 0. Anything else — a non-zero exit, a
-//! signal, a missing or malformed `result.json`, an array of the wrong shape — is a
-//! failed attempt, retried by the campaign's retry policy.
-//!
-//! The environment of a worker is an allow-list: `PATH`, `HOME`, `LANG`, `LC_ALL`, `TZ`,
-//! `TMPDIR`, `PYTHONPATH`, `VIRTUAL_ENV`, `RUST_LOG`, plus `TARN_TASK`, `TARN_TASK_DIR`,
-//! `TARN_SEED`, and the thread settings `RAYON_NUM_THREADS`, `OMP_NUM_THREADS`,
-//! `OPENBLAS_NUM_THREADS` and `MKL_NUM_THREADS` (all set to the campaign's
-//! `threads_per_task`, so that results are reproducible).
-//!
-//! # `task.json`
-//!
-//! ```json
-//! {
-//!   "protocol": 1,
-//!   "task_id": "r0002.explore.hot.w001",
-//!   "campaign": "ridge-walk",
-//!   "round": 2,
-//!   "stage": "hot",
-//!   "role": "explore",
-//!   "kind": "langevin",
-//!   "walker": 1,
-//!   "walkers": 3,
-//!   "seed": 9245118021344501234,
-//!   "kT": 10.0,
-//!   "threads": 1,
-//!   "system": { "model": "muller-brown" },
-//!   "params": { "n_steps": 2000 },
-//!   "inputs": { "start": "in/start.npy" },
-//!   "model": "in/model.safetensors"
-//! }
-//! ```
-//!
-//! * `role` is one of `explore`, `dedup`, `retrain`, `evaluate`; `stage` is the stage's
-//!   name from the campaign file; `kind` is the built-in kind or `null` for a command.
-//! * `seed` is a 64-bit unsigned integer derived from the campaign seed and the task id;
-//!   every attempt of a task gets the same seed, so a retried task gives the same result.
-//!   (JSON readers that parse numbers as doubles lose the low bits of large integers;
-//!   Python's `json` does not.)
-//! * `params` is the stage's `params` table from the campaign file, unchanged.
-//! * `system` is the campaign's `[system]` table.
-//! * `inputs` maps array names to paths relative to the task directory; `model` is the
-//!   current flow model or `null` before the first retrain.
-//!
-//! Input arrays per role (all `.npy`, float64, C order; `dim` is the system's dimension):
-//!
-//! | role | inputs |
-//! | --- | --- |
-//! | explore | `start` `[m, dim]`: this walker's start configurations (m ≥ 1) |
-//! | dedup | `samples` `[n, dim]` and `energies` `[n]`: every sample of this round's explore stages, in stage then walker then sample order; `catalogue` `[k, dim]` and `catalogue_energies` `[k]`: the known states' minima in id order (k may be 0) |
-//! | retrain | `train` `[n, dim]` and `train_energies` `[n]`: the pooled training set of all rounds so far |
-//! | evaluate | `samples`, `energies` (this round's, as for dedup), `catalogue`, `catalogue_energies` (after this round's dedup) |
-//!
-//! # `out/result.json`
-//!
-//! ```json
-//! {
-//!   "protocol": 1,
-//!   "status": "ok",
-//!   "outputs": { "samples": "out/samples.npy", "energies": "out/energies.npy" },
-//!   "metrics": { "acceptance": 0.31 },
-//!   "energy_evals": 20000,
-//!   "model": null
-//! }
-//! ```
-//!
-//! * `status` is `"ok"`, or `"failed"` with a `message` string (the attempt then fails
-//!   and the message is shown to the user).
-//! * `outputs` maps output names to paths relative to the task directory. A path must
-//!   stay inside the task directory: absolute paths, `..` components and symbolic links
-//!   that lead outside are refused.
-//! * `metrics` maps names to finite numbers (or `null`); they appear in `tarn rounds`.
-//!   They must not depend on timing: they are part of the campaign's digest.
-//! * `energy_evals` is the number of energy evaluations the worker made (a
-//!   non-negative integer); it is the campaign's main cost measure.
-//! * `model` is the path of a new flow model file (retrain only) or `null`.
-//!
-//! Output arrays per role (`n` below is the number of input samples):
-//!
-//! | role | required outputs | optional outputs |
-//! | --- | --- | --- |
-//! | explore | `samples` `[n, dim]`, `energies` `[n]` (finite) | `log_weights` `[n]` (finite): log importance weights of biased explorers |
-//! | dedup | `labels` `[n]`: integers in `-1..k+m`, where `0..k` are the known states in id order, `k..k+m` the new ones, and `-1` a sample assigned to no state (e.g. its quench did not converge); `new_states` `[m, dim]` and `new_energies` `[m]` (finite) | `keep` `[n]` of 0/1: samples chosen for the training set (all kept if absent) |
-//! | retrain | `model` (the top-level field) | — |
-//! | evaluate | — | `free_energy` `[k]` and `free_energy_err` `[k]` in kT (finite, or NaN for a state not estimated) |
-//!
-//! Unknown fields in `result.json` are refused, so that a typing mistake in a worker is
-//! caught at once rather than silently ignored.
+#![doc = include_str!("../../docs/worker-protocol.md")]
 
 pub mod npy;
 
@@ -418,7 +327,7 @@ fn check_outputs(
         )
     };
     let allowed: &[&str] = match want.role {
-        Role::Explore => &["samples", "energies", "log_weights"],
+        Role::Explore => &["samples", "energies", "log_weights", "cv", "bias"],
         Role::Dedup => &["labels", "new_states", "new_energies", "keep"],
         Role::Retrain => &[],
         Role::Evaluate => &["free_energy", "free_energy_err"],
@@ -442,9 +351,16 @@ fn check_outputs(
             let (ep, energies) = get("energies").ok_or_else(|| missing("energies"))?;
             check_vector(ep, "energies", energies, n)?;
             check_finite(ep, "energies", energies)?;
-            if let Some((lp, lw)) = get("log_weights") {
-                check_vector(lp, "log_weights", lw, n)?;
-                check_finite(lp, "log_weights", lw)?;
+            for name in ["log_weights", "bias"] {
+                if let Some((p, a)) = get(name) {
+                    check_vector(p, name, a, n)?;
+                    check_finite(p, name, a)?;
+                }
+            }
+            if let Some((cp, cv)) = get("cv") {
+                let cols = cv.shape.get(1).copied().unwrap_or(0);
+                check_matrix(cp, "cv", cv, Some(n), cols)?;
+                check_finite(cp, "cv", cv)?;
             }
         }
         Role::Dedup => {

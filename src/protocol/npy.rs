@@ -347,13 +347,15 @@ pub fn read_file(path: &Path, max_bytes: u64) -> Result<Array, String> {
     decode(&bytes).map_err(|e| e.to_string())
 }
 
-/// Writes bytes to `path` durably: a temporary file, fsync, then rename.
+/// Writes bytes to `path` through a temporary file and a rename, so that a reader never
+/// sees a half-written file. There is no fsync: a worker's files only need to survive
+/// until tarn has read them and committed them to the store (which is durable); after a
+/// machine crash the task simply runs again.
 pub fn write_file_atomic(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
     let tmp = path.with_extension("tmp-write");
     {
         let mut f = std::fs::File::create(&tmp)?;
         f.write_all(bytes)?;
-        f.sync_all()?;
     }
     std::fs::rename(&tmp, path)
 }

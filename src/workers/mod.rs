@@ -78,6 +78,7 @@ pub fn main(kind: &str) -> ExitCode {
         "hold" => explore::hold(&task),
         "metropolis" => explore::metropolis(&task),
         "langevin" => explore::langevin(&task),
+        "metadynamics" => explore::metadynamics_worker(&task),
         "quench" => dedup::quench(&task),
         other => Err(format!(
             "'{other}' is not a built-in worker kind this build provides"
