@@ -157,8 +157,8 @@ fn catalogue_changes(
         .filter(|r| r.round < task.round)
         .map(|r| r.energy_evals)
         .sum();
-    for j in 0..m {
-        let i = first[j].expect("checked above");
+    for (j, i) in first.iter().enumerate() {
+        let i = i.expect("checked above");
         let origin = &prepared.provenance[i];
         let finder = tasks
             .iter()

@@ -6,9 +6,13 @@
 
 use std::ops::Range;
 
-/// A located problem in a campaign file.
+/// A located problem in a campaign file (boxed, so that results carrying it stay small).
 #[derive(Debug, Clone, PartialEq)]
-pub struct SpecError {
+pub struct SpecError(Box<SpecErrorDetail>);
+
+/// The parts of a [`SpecError`].
+#[derive(Debug, Clone, PartialEq)]
+pub struct SpecErrorDetail {
     /// The file as the user named it.
     pub file: String,
     /// The key path, e.g. `explore[0].walkers` (empty for a syntax error).
@@ -25,14 +29,14 @@ pub struct SpecError {
 impl SpecError {
     /// A problem with no position in the file (e.g. the file cannot be read).
     pub fn whole_file(file: &str, message: impl Into<String>) -> Self {
-        SpecError {
+        SpecError(Box::new(SpecErrorDetail {
             file: file.to_string(),
             path: String::new(),
             message: message.into(),
             line: None,
             column: None,
             excerpt: None,
-        }
+        }))
     }
 
     /// A problem at `span` of `source`.
@@ -44,28 +48,34 @@ impl SpecError {
         message: impl Into<String>,
     ) -> Self {
         let mut e = SpecError::whole_file(file, message);
-        e.path = path.to_string();
+        e.0.path = path.to_string();
         if let Some(span) = span {
             let (line, column, excerpt) = locate(source, span);
-            e.line = Some(line);
-            e.column = Some(column);
-            e.excerpt = Some(excerpt);
+            e.0.line = Some(line);
+            e.0.column = Some(column);
+            e.0.excerpt = Some(excerpt);
         }
         e
+    }
+
+    /// The parts of the error.
+    pub fn detail(&self) -> &SpecErrorDetail {
+        &self.0
     }
 }
 
 impl std::fmt::Display for SpecError {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        match (self.line, self.column) {
-            (Some(l), Some(c)) => write!(f, "{}:{l}:{c}: ", self.file)?,
-            _ => write!(f, "{}: ", self.file)?,
+        let d = &self.0;
+        match (d.line, d.column) {
+            (Some(l), Some(c)) => write!(f, "{}:{l}:{c}: ", d.file)?,
+            _ => write!(f, "{}: ", d.file)?,
         }
-        if !self.path.is_empty() {
-            write!(f, "{}: ", self.path)?;
+        if !d.path.is_empty() {
+            write!(f, "{}: ", d.path)?;
         }
-        write!(f, "{}", self.message)?;
-        if let Some(ex) = &self.excerpt {
+        write!(f, "{}", d.message)?;
+        if let Some(ex) = &d.excerpt {
             write!(f, "\n{ex}")?;
         }
         Ok(())
