@@ -221,7 +221,10 @@ pub fn bench_one(
 }
 
 /// The full table: every configuration x mode (ml, kl, sample) x thread count, each
-/// timed for about `seconds_per_row`, with the GEMM peak measured once per thread count.
+/// timed for about `seconds_per_row`. The GEMM peak is measured (for a quarter of the
+/// row's time) right before each row at the same thread count, so that on a machine
+/// shared with other work each fraction compares two measurements taken under the same
+/// conditions.
 pub fn run_flow_bench(
     configs: &[BenchConfig],
     thread_counts: &[usize],
@@ -229,9 +232,9 @@ pub fn run_flow_bench(
 ) -> Result<Vec<BenchRow>, FlowError> {
     let mut rows = Vec::new();
     for &threads in thread_counts {
-        let peak = gemm_peak_gflops(threads, seconds_per_row.max(0.3))?;
         for cfg in configs {
             for mode in ["ml", "kl", "sample"] {
+                let peak = gemm_peak_gflops(threads, (0.25 * seconds_per_row).max(0.2))?;
                 rows.push(bench_one(
                     cfg,
                     mode,

@@ -4,6 +4,8 @@
 //! Owns: flow architecture, training, latent-space Metropolis, generation, weight files'
 //! byte format. Must not touch: the store, the engine, tokio, task directories.
 
+#![warn(missing_docs)]
+
 pub mod bench;
 mod flow;
 mod frame;

@@ -61,6 +61,10 @@ pub(crate) struct Tape<T> {
     /// Whether each dense layer's gradient has been written since the last reset (the
     /// first write overwrites, so gradients never need zeroing).
     pub written: Vec<bool>,
+    /// Whether passes keep the per-layer tape for a backward pass (training) or reuse
+    /// one layer's buffers for all layers (sampling and density evaluation, which then
+    /// stay in cache).
+    pub record: bool,
     /// Small transposed copies for thin matrix products.
     scratch: Vec<T>,
     /// The error a closure met on this chunk, checked in chunk order afterwards.
@@ -80,18 +84,26 @@ impl<T: Real> Tape<T> {
         let layers = flow
             .layers
             .iter()
-            .map(|c| {
+            .enumerate()
+            .map(|(k, c)| {
                 let nh = c.dense.len() - 1;
                 max_w = max_w.max(2 * c.trans.len()).max(c.cond.len());
+                // Layer 0's buffers also serve every layer in passes that keep no tape,
+                // so they are sized for the widest split (odd dimensions alternate).
+                let (na, nb) = if k == 0 {
+                    (d - d / 2, d - d / 2)
+                } else {
+                    (c.cond.len(), c.trans.len())
+                };
                 LayerTape {
-                    a_in: z(cap * c.cond.len()),
+                    a_in: z(cap * na),
                     hidden: (0..nh).map(|_| z(cap * h)).collect(),
                     aux: (0..nh)
                         .map(|_| if silu { z(cap * h) } else { Vec::new() })
                         .collect(),
-                    out: z(cap * 2 * c.trans.len()),
-                    s: z(cap * c.trans.len()),
-                    b_out: z(cap * c.trans.len()),
+                    out: z(cap * 2 * nb),
+                    s: z(cap * nb),
+                    b_out: z(cap * nb),
                 }
             })
             .collect();
@@ -113,6 +125,7 @@ impl<T: Real> Tape<T> {
             f64: vec![0.0; cap * dx],
             stats: [0.0; 4],
             written: vec![false; flow.layers.iter().map(|c| c.dense.len()).sum()],
+            record: true,
             scratch: Vec::new(),
             err: None,
             rows_done: 0,
@@ -283,7 +296,8 @@ impl<T: Real> Tape<T> {
     fn coupling(&mut self, flow: &Flow<T>, k: usize, n: usize, gen: bool) {
         let c = &flow.layers[k];
         let d = flow.dim();
-        let lt = &mut self.layers[k];
+        let lt = &mut self.layers[if self.record { k } else { 0 }];
+        let record = self.record;
         let da = c.cond.len();
         for i in 0..n {
             let row = &self.state[i * d..(i + 1) * d];
@@ -299,6 +313,7 @@ impl<T: Real> Tape<T> {
             lt,
             self.gemm_threads,
             &mut self.scratch,
+            record,
         );
         let clamp = T::of(flow.spec.clamp);
         coupling_elementwise(
@@ -530,6 +545,7 @@ fn mlp_forward<T: Real>(
     lt: &mut LayerTape<T>,
     threads: usize,
     scratch: &mut Vec<T>,
+    record: bool,
 ) {
     let nd = c.dense.len();
     for (l, dn) in c.dense.iter().enumerate() {
@@ -557,7 +573,8 @@ fn mlp_forward<T: Real>(
             matmul_s(
                 n, dn.n_out, dn.n_in, input, false, w, false, out, false, threads, scratch,
             );
-            bias_act_forward(Some(act), n, b, out, &mut lt.aux[l]);
+            let aux: &mut [T] = if record { &mut lt.aux[l] } else { &mut [] };
+            bias_act_forward(Some(act), n, b, out, aux);
         }
     }
 }

@@ -278,6 +278,7 @@ impl<T: Real> Workspace<T> {
         let fixed = flow.fixed_log_det();
         for (start, m) in self.blocks(n).collect::<Vec<_>>() {
             self.run_block(start, m, |tape, _, r0, rows| {
+                tape.record = false;
                 tape.state[..rows * d].copy_from_slice(&z[r0 * d..(r0 + rows) * d]);
                 tape.generate(flow, rows);
                 Ok(())
@@ -310,6 +311,7 @@ impl<T: Real> Workspace<T> {
         let fixed = flow.fixed_log_det();
         for (start, m) in self.blocks(n).collect::<Vec<_>>() {
             self.run_block(start, m, |tape, _, r0, rows| {
+                tape.record = false;
                 tape.xbuf[..rows * dx].copy_from_slice(&x[r0 * dx..(r0 + rows) * dx]);
                 tape.invert(flow, rows);
                 Ok(())
@@ -342,6 +344,7 @@ impl<T: Real> Workspace<T> {
         let norm = -0.5 * d as f64 * (2.0 * std::f64::consts::PI * temperature_factor).ln();
         for (start, m) in self.blocks(n).collect::<Vec<_>>() {
             self.run_block(start, m, |tape, _, r0, rows| {
+                tape.record = false;
                 tape.xbuf[..rows * dx].copy_from_slice(&x[r0 * dx..(r0 + rows) * dx]);
                 tape.invert(flow, rows);
                 Ok(())
@@ -387,6 +390,7 @@ impl<T: Real> Workspace<T> {
         self.reset();
         for (start, m) in self.blocks(n).collect::<Vec<_>>() {
             self.run_block(start, m, |tape, grad, r0, rows| {
+                tape.record = true;
                 tape.xbuf[..rows * dx].copy_from_slice(&x[r0 * dx..(r0 + rows) * dx]);
                 tape.invert(flow, rows);
                 let mut nll = 0.0;
@@ -456,6 +460,7 @@ impl<T: Real> Workspace<T> {
         self.reset();
         for (start, m) in self.blocks(n).collect::<Vec<_>>() {
             self.run_block(start, m, |tape, grad, r0, rows| {
+                tape.record = true;
                 tape.state[..rows * d].copy_from_slice(&z[r0 * d..(r0 + rows) * d]);
                 tape.generate(flow, rows);
                 for (o, v) in tape.x64[..rows * dx]
@@ -544,6 +549,7 @@ impl<T: Real> Workspace<T> {
         let fixed = flow.fixed_log_det();
         for (start, m) in self.blocks(n).collect::<Vec<_>>() {
             self.run_block(start, m, |tape, _, r0, rows| {
+                tape.record = false;
                 tape.state[..rows * d].copy_from_slice(&z[r0 * d..(r0 + rows) * d]);
                 tape.generate(flow, rows);
                 for (o, v) in tape.x64[..rows * dx]
