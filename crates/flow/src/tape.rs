@@ -537,6 +537,7 @@ fn coupling_backward_elementwise_k<T: Real>(
 
 /// The conditioner MLP of coupling `c` on the `n` rows of `lt.a_in`, writing hidden
 /// activations and the raw output into the tape.
+#[allow(clippy::too_many_arguments)]
 fn mlp_forward<T: Real>(
     params: &[T],
     c: &Coupling,
