@@ -221,6 +221,7 @@ fn metadynamics_reweights_back_to_the_quadrature_populations() {
             max: 2.5,
             bins: 250,
         }],
+        interpolate_bias: false,
     };
     let mut rng = ChaCha8Rng::seed_from_u64(12);
     let run = metadynamics(&DoubleWell::default(), &[1.0, 0.0], 1.0, &params, &mut rng).unwrap();
@@ -443,5 +444,124 @@ fn cv_values_are_what_they_say() {
             r0: 1.5,
             dims: Some(2)
         }
+    );
+}
+
+#[test]
+fn interpolated_bias_matches_the_exact_hill_sum_in_one_and_two_cvs() {
+    use tarn_physics::explore::InterpolatedBias;
+    use tarn_physics::models::MullerBrown;
+    // Two CVs (x and y of Müller–Brown) at high temperature so that hills spread out.
+    let params = MetadParams {
+        n_steps: 20_000,
+        dt: 0.001,
+        friction: 10.0,
+        save_stride: 10,
+        temperature_factor: 1.0,
+        cvs: vec![
+            CollectiveVariable::Coordinate { index: 0 },
+            CollectiveVariable::Coordinate { index: 1 },
+        ],
+        hill_height: 2.0,
+        hill_widths: vec![0.1, 0.1],
+        pace: 50,
+        bias_factor: 8.0,
+        grid: vec![
+            GridAxis {
+                min: -1.8,
+                max: 1.3,
+                bins: 124,
+            },
+            GridAxis {
+                min: -0.6,
+                max: 2.2,
+                bins: 112,
+            },
+        ],
+        interpolate_bias: true,
+    };
+    let run = metadynamics(
+        &MullerBrown,
+        &[-0.55, 1.44],
+        10.0,
+        &params,
+        &mut ChaCha8Rng::seed_from_u64(3),
+    )
+    .unwrap();
+    let bias = &run.final_bias;
+    let v_max = bias.heights.iter().sum::<f64>().max(1.0);
+    let interp = InterpolatedBias::new(bias, &params.grid);
+    let mut rng = ChaCha8Rng::seed_from_u64(4);
+    let mut worst = 0.0f64;
+    for _ in 0..2000 {
+        use rand::Rng;
+        let s = [rng.gen_range(-1.7..1.2), rng.gen_range(-0.5..2.1)];
+        let mut g_exact = [0.0; 2];
+        let mut g_grid = [0.0; 2];
+        let v_exact = bias.value_and_gradient(&s, &mut g_exact);
+        let v_grid = interp.value_and_gradient(&s, &mut g_grid).unwrap();
+        worst = worst.max((v_exact - v_grid).abs());
+        let g_scale = g_exact[0].abs().max(g_exact[1].abs()).max(1.0);
+        assert!(
+            (g_exact[0] - g_grid[0]).abs() < 1e-2 * g_scale
+                && (g_exact[1] - g_grid[1]).abs() < 1e-2 * g_scale
+        );
+    }
+    eprintln!("2-CV interpolated bias: worst |ΔV| {worst:.2e} of bias scale {v_max:.1}");
+    // Absolute error in energy units (kT = 10 here; hill heights up to 2).
+    assert!(worst < 1e-2, "{worst}");
+    // Outside the node range the interpolation declines and the exact sum is used.
+    assert!(interp
+        .value_and_gradient(&[5.0, 0.0], &mut [0.0; 2])
+        .is_none());
+}
+
+#[test]
+fn metadynamics_with_an_interpolated_bias_also_reweights_to_quadrature() {
+    let reference = double_well_reference(1.0);
+    let params = MetadParams {
+        n_steps: 200_000,
+        dt: 0.02,
+        friction: 2.0,
+        save_stride: 5,
+        temperature_factor: 1.0,
+        cvs: vec![CollectiveVariable::Coordinate { index: 0 }],
+        hill_height: 0.3,
+        hill_widths: vec![0.15],
+        pace: 100,
+        bias_factor: 6.0,
+        grid: vec![GridAxis {
+            min: -2.5,
+            max: 2.5,
+            bins: 250,
+        }],
+        interpolate_bias: true,
+    };
+    let t = std::time::Instant::now();
+    let run = metadynamics(
+        &DoubleWell::default(),
+        &[1.0, 0.0],
+        1.0,
+        &params,
+        &mut ChaCha8Rng::seed_from_u64(12),
+    )
+    .unwrap();
+    let secs = t.elapsed().as_secs_f64();
+    let skip = run.bias.len() / 5;
+    let lw = run.log_weights();
+    let lw_max = lw[skip..].iter().cloned().fold(f64::NEG_INFINITY, f64::max);
+    let w: Vec<f64> = lw[skip..].iter().map(|l| (l - lw_max).exp()).collect();
+    let left: Vec<f64> = run.cv_values[skip..]
+        .iter()
+        .map(|s| if *s < reference.x_saddle { 1.0 } else { 0.0 })
+        .collect();
+    let (p, err) = block_mean(&left, Some(&w), 10);
+    eprintln!(
+        "metad (interpolated bias, {secs:.2}s): p_left {p} ± {err}, exact {}",
+        reference.p_left
+    );
+    assert!(
+        (p - reference.p_left).abs() < 4.0 * err + 0.01,
+        "{p} ± {err}"
     );
 }

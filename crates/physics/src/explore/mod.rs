@@ -15,7 +15,7 @@ pub mod metad;
 pub mod metropolis;
 
 pub use langevin::{langevin_baoab, LangevinParams, LangevinRun};
-pub use metad::{metadynamics, Bias, GridAxis, MetadParams, MetadRun};
+pub use metad::{metadynamics, Bias, GridAxis, InterpolatedBias, MetadParams, MetadRun};
 pub use metropolis::{metropolis, MetropolisParams, MetropolisRun};
 
 use serde::Serialize;
