@@ -107,6 +107,25 @@ fn site_rows<const FMA: bool>(
     m2: f64,
     lambda: f64,
     phi: &[f64],
+    forces: Option<&mut [f64]>,
+    padded: &mut [f64],
+) -> f64 {
+    // Common lattice sizes get code specialised for a constant L (the call is inlined
+    // with a literal size), which unrolls the row loops and the halo copies.
+    match size {
+        8 => site_rows_sized::<FMA>(8, m2, lambda, phi, forces, padded),
+        16 => site_rows_sized::<FMA>(16, m2, lambda, phi, forces, padded),
+        _ => site_rows_sized::<FMA>(size, m2, lambda, phi, forces, padded),
+    }
+}
+
+/// The body of [`site_rows`] for one lattice size.
+#[inline(always)]
+fn site_rows_sized<const FMA: bool>(
+    size: usize,
+    m2: f64,
+    lambda: f64,
+    phi: &[f64],
     mut forces: Option<&mut [f64]>,
     padded: &mut [f64],
 ) -> f64 {
