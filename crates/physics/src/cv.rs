@@ -36,7 +36,7 @@ pub enum CollectiveVariable {
         #[serde(default)]
         dims: Option<usize>,
     },
-    /// offset + Σ_k weights[k] · x[indices[k]].
+    /// offset + Σ_k `weights[k]` · `x[indices[k]]`.
     Linear {
         /// Indices into the flat configuration.
         indices: Vec<usize>,

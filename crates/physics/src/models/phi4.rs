@@ -1,7 +1,7 @@
 //! Two-dimensional lattice φ⁴ on an L×L periodic lattice (Albergo, Kanwar & Shanahan,
 //! Phys. Rev. D 100, 034515, 2019):
 //!
-//! S[φ] = Σ_x [Σ_μ φ_x(2φ_x − φ_{x+μ} − φ_{x−μ}) + m² φ_x² + λ φ_x⁴]
+//! S(φ) = Σ_x [Σ_μ φ_x(2φ_x − φ_{x+μ} − φ_{x−μ}) + m² φ_x² + λ φ_x⁴]
 //!      = Σ_x [Σ_μ (φ_{x+μ} − φ_x)² + m² φ_x² + λ φ_x⁴],
 //!
 //! with probability ∝ exp(−S), so the "energy" of a configuration is S and kT = 1 is the
