@@ -347,3 +347,25 @@ fn sigkill_at_twenty_random_instants_then_resume_gives_the_clean_digest() {
     };
     assert_eq!(counts(&got), counts(&clean_samples));
 }
+
+#[test]
+fn children_a_worker_leaves_behind_are_ended_with_its_process_group() {
+    let env = Env::new();
+    let file = faulty_campaign(&env, "orphan", 2);
+    env.tarn(&["run", file.to_str().unwrap(), "--quiet"])
+        .code(0);
+    // The orphan mode starts `sleep 30` from round 2's workers; none may survive.
+    std::thread::sleep(Duration::from_millis(200));
+    let ps = std::process::Command::new("ps")
+        .args(["-eo", "pid,ppid,args"])
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&ps.stdout);
+    let mode_file = env.path().join("mode.txt");
+    let survivors: Vec<&str> = text.lines().filter(|l| l.ends_with("sleep 30")).collect();
+    assert!(
+        survivors.is_empty(),
+        "left behind: {survivors:?} ({})",
+        mode_file.display()
+    );
+}

@@ -100,8 +100,10 @@ impl LocalExecutor {
         // The worker is gone; end anything it left behind in its group.
         let _ = killpg(Pid::from_raw(pid), Signal::SIGKILL);
         let (code, signal, cpu) = status;
-        let (stdout_tail, stdout_bytes) = out.join().unwrap_or_default();
-        let (stderr_tail, stderr_bytes) = err.join().unwrap_or_default();
+        // A process that left the group (setsid) may still hold the pipes open: give the
+        // readers a moment, then go on with what they have.
+        let (stdout_tail, stdout_bytes) = out.recv_timeout(PIPE_GRACE).unwrap_or_default();
+        let (stderr_tail, stderr_bytes) = err.recv_timeout(PIPE_GRACE).unwrap_or_default();
         let exit = match (ended_by_us, code, signal) {
             (Some(e), _, _) => e,
             (None, Some(c), _) => Exit::Code(c),
@@ -207,7 +209,8 @@ fn drain(
     log_path: std::path::PathBuf,
     tail: usize,
     log_limit: u64,
-) -> std::thread::JoinHandle<(String, u64)> {
+) -> std::sync::mpsc::Receiver<(String, u64)> {
+    let (tx, rx) = std::sync::mpsc::channel();
     std::thread::spawn(move || {
         use std::io::Write;
         let mut log = std::fs::File::create(&log_path).ok();
@@ -231,6 +234,10 @@ fn drain(
             }
         }
         let bytes: Vec<u8> = kept.into_iter().collect();
-        (String::from_utf8_lossy(&bytes).into_owned(), total)
-    })
+        let _ = tx.send((String::from_utf8_lossy(&bytes).into_owned(), total));
+    });
+    rx
 }
+
+/// How long output readers may take after the worker's group was ended.
+const PIPE_GRACE: Duration = Duration::from_secs(2);

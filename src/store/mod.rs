@@ -588,3 +588,108 @@ fn printable_key(key: &[u8]) -> String {
         .unwrap_or(('?', &[]));
     format!("{p}:{}", hex::encode(rest))
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn meta() -> Meta {
+        Meta {
+            v: SCHEMA_VERSION,
+            campaign: "t".into(),
+            created_unix: 0.0,
+            tarn_version: "test".into(),
+            base_dir: ".".into(),
+        }
+    }
+
+    fn version() -> CampaignVersion {
+        CampaignVersion {
+            v: SCHEMA_VERSION,
+            index: 0,
+            hash: "0123456789abcdef".into(),
+            text: "name = \"t\"".into(),
+            path: "t.toml".into(),
+            accepted_unix: 0.0,
+        }
+    }
+
+    #[test]
+    fn a_store_of_another_schema_version_is_refused_and_left_unchanged() {
+        let dir = tempfile::tempdir().unwrap();
+        {
+            let s = Store::create(dir.path(), &meta(), &version()).unwrap();
+            s.db.insert(b"mschema", 99u32.to_be_bytes().to_vec())
+                .unwrap();
+            s.db.flush().unwrap();
+        }
+        let err = Store::open(dir.path()).err().expect("refused");
+        assert!(
+            err.to_string()
+                .contains("has schema version 99, but this tarn reads version 1"),
+            "{err}"
+        );
+        // Refusing did not rewrite it.
+        let again = Store::open(dir.path()).err().expect("still refused");
+        assert!(matches!(again, StoreError::Schema { found: 99, .. }));
+    }
+
+    #[test]
+    fn a_damaged_record_is_reported_by_key_not_rewritten() {
+        let dir = tempfile::tempdir().unwrap();
+        let s = Store::create(dir.path(), &meta(), &version()).unwrap();
+        s.db.insert(keys::round(1), b"{not json".to_vec()).unwrap();
+        let err = s.rounds().err().expect("damaged");
+        assert!(
+            err.to_string().contains("record r:00000001 is unreadable"),
+            "{err}"
+        );
+        assert_eq!(
+            s.db.get(keys::round(1)).unwrap().unwrap().as_ref(),
+            b"{not json"
+        );
+    }
+
+    #[test]
+    fn a_record_of_an_unknown_version_is_refused() {
+        let dir = tempfile::tempdir().unwrap();
+        let s = Store::create(dir.path(), &meta(), &version()).unwrap();
+        let mut v = serde_json::to_value(meta()).unwrap();
+        v["v"] = 7.into();
+        s.db.insert(b"mmeta", serde_json::to_vec(&v).unwrap())
+            .unwrap();
+        let err = s.meta().err().expect("refused");
+        assert!(
+            err.to_string()
+                .contains("record version Some(7), expected 1"),
+            "{err}"
+        );
+    }
+
+    #[test]
+    fn arrays_round_trip_through_chunks() {
+        let dir = tempfile::tempdir().unwrap();
+        let s = Store::create(dir.path(), &meta(), &version()).unwrap();
+        let n = CHUNK / 8 + 10; // more than one chunk
+        let a = Array::vector((0..n).map(|i| i as f64 * 0.5).collect());
+        let key = keys::task_suffix(1, 0, 2);
+        let mut b = Batch::default();
+        b.put_array(&key, "samples", &a);
+        s.apply(b).unwrap();
+        assert_eq!(s.array(&key, "samples").unwrap().unwrap(), a);
+        assert_eq!(s.array(&key, "energies").unwrap(), None);
+    }
+
+    #[test]
+    fn events_are_numbered_in_order_across_reopens() {
+        let dir = tempfile::tempdir().unwrap();
+        {
+            let s = Store::create(dir.path(), &meta(), &version()).unwrap();
+            s.log_event("a", "one").unwrap();
+        }
+        let s = Store::open(dir.path()).unwrap();
+        s.log_event("b", "two").unwrap();
+        let seqs: Vec<u64> = s.events().unwrap().iter().map(|e| e.seq).collect();
+        assert_eq!(seqs, vec![0, 1, 2]);
+    }
+}

@@ -8,7 +8,7 @@ From round 2 on it misbehaves as the mode file named by argv[1] says:
   shape   samples of 3 columns   nan     a NaN energy
   escape  an output path outside the task directory
   slow    sleep 1 s, then behave well (in every round)
-  orphan  start a child that sleeps, then behave well
+  orphan  start a child that sleeps 30 s, then behave well
 """
 import json
 import os
@@ -66,7 +66,7 @@ def main():
             write_result({"samples": "../../escaped.npy", "energies": "out/energies.npy"})
             return
         if mode == "orphan":
-            subprocess.Popen(["sleep", "300"])
+            subprocess.Popen(["sleep", "30"])
     np.save("out/samples.npy", x)
     np.save("out/energies.npy", e)
     write_result({"samples": "out/samples.npy", "energies": "out/energies.npy"})
