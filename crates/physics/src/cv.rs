@@ -218,12 +218,22 @@ impl CollectiveVariable {
         }
     }
 
-    /// Values of the variable for every configuration of a `[n, dim]` batch.
-    pub fn values(&self, x: &[f64], dim: usize, model_dims: Option<usize>) -> Vec<f64> {
+    /// Values of the variable for every configuration of a `[n, dim]` batch, after
+    /// checking that it fits (so that bad indices are an error, not a panic).
+    pub fn values(
+        &self,
+        x: &[f64],
+        dim: usize,
+        model_dims: Option<usize>,
+    ) -> Result<Vec<f64>, PhysicsError> {
+        self.validate(dim, model_dims)?;
+        if x.len() % dim != 0 {
+            return Err(PhysicsError::StartShape { dim, got: x.len() });
+        }
         let mut g = vec![0.0; dim];
-        x.chunks(dim.max(1))
+        Ok(x.chunks(dim)
             .map(|xi| self.value_and_gradient(xi, model_dims, &mut g))
-            .collect()
+            .collect())
     }
 }
 

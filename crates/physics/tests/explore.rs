@@ -427,6 +427,17 @@ fn cv_values_are_what_they_say() {
     };
     assert!((c.value(&x, None) - 0.5).abs() < 1e-15);
     assert!(d.validate(4, None).is_ok());
+    assert_eq!(
+        d.values(&[0.0, 0.0, 3.0, 4.0, 0.0, 0.0, 0.0, 1.0], 4, None)
+            .unwrap(),
+        vec![5.0, 1.0]
+    );
+    let out_of_range = CollectiveVariable::Coordinate { index: 9 };
+    assert!(out_of_range
+        .values(&x, 4, None)
+        .unwrap_err()
+        .to_string()
+        .contains("index"));
     let needs = CollectiveVariable::Distance {
         i: 0,
         j: 1,

@@ -182,7 +182,8 @@ fn integrate_box(dw: &DoubleWell, kt: f64, shift: f64, x_lo: f64, x_hi: f64, y_m
 
 /// The exact populations and free-energy difference of the default [`DoubleWell`] at
 /// temperature `kt`, by 2-D quadrature of the Boltzmann factor on each side of the
-/// saddle. Tests of samplers and estimators compare against this.
+/// saddle. Tests of samplers and estimators compare against this. `kt` must be
+/// positive; the integration box is sized for kT up to about 10.
 pub fn double_well_reference(kt: f64) -> DoubleWellReference {
     let dw = DoubleWell::default();
     let x_saddle = dw.stationary_x(0.0);
