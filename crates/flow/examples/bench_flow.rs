@@ -1,6 +1,6 @@
 //! Prints the flow benchmark table as JSON lines, then the peak resident memory:
 //! `cargo run --release -p tarn-flow --example bench_flow [seconds] [config|all] [auto|batch|gemm] [mode|all] [threads]`.
-use tarn_flow::bench::{bench_one, gemm_peak_gflops, standard_configs};
+use tarn_flow::bench::{bench_one, bench_row_best_of, gemm_peak_gflops, standard_configs};
 use tarn_flow::Threading;
 
 fn main() {
@@ -29,8 +29,12 @@ fn main() {
                 {
                     continue;
                 }
-                let peak = gemm_peak_gflops(threads, 0.3).unwrap();
-                let row = bench_one(&cfg, mode, threads, secs, threading, peak).unwrap();
+                let row = if threading == Threading::Auto {
+                    bench_row_best_of(&cfg, mode, threads, secs, 3).unwrap()
+                } else {
+                    let peak = gemm_peak_gflops(threads, 0.3).unwrap();
+                    bench_one(&cfg, mode, threads, secs, threading, peak).unwrap()
+                };
                 println!("{}", serde_json::to_string(&row).unwrap());
             }
         }
