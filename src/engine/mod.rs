@@ -522,15 +522,21 @@ async fn run_task_inner(
                 attempt_dir.display()
             ))
         })?;
-        ctx.monitor.emit(Event::TaskStarted {
-            id: task.id.clone(),
-            attempt: number,
-        });
         let started_unix = now_unix();
         let job = make_job(ctx, stage, task, &attempt_dir);
-        let outcome = ctx.executor.run(job, ctx.level.clone()).await;
+        let on_start = || {
+            ctx.monitor.emit(Event::TaskStarted {
+                id: task.id.clone(),
+                attempt: number,
+            })
+        };
+        let outcome = ctx.executor.run(job, ctx.level.clone(), on_start).await;
         let mut attempt = attempt_of(number, &outcome, started_unix);
         let failure = match &outcome.exit {
+            Exit::NotStarted => {
+                let _ = std::fs::remove_dir_all(&attempt_dir);
+                return Ok(RunEnd::Interrupted);
+            }
             Exit::Cancelled => {
                 attempt.outcome = "cancelled".into();
                 record_attempt(
@@ -665,7 +671,7 @@ fn attempt_of(number: u32, o: &Outcome, started_unix: f64) -> Attempt {
             Exit::Code(_) => "exit",
             Exit::Signal(_) => "signal",
             Exit::TimedOut => "timeout",
-            Exit::Cancelled => "cancelled",
+            Exit::Cancelled | Exit::NotStarted => "cancelled",
             Exit::SpawnFailed(_) => "spawn",
         }
         .into(),
@@ -705,7 +711,7 @@ fn describe_exit(exit: &Exit, o: &Outcome, timeout: f64) -> String {
             (timeout * 1000.0).round() / 1000.0
         ),
         Exit::SpawnFailed(m) => m.clone(),
-        Exit::Cancelled => "cancelled".into(),
+        Exit::Cancelled | Exit::NotStarted => "cancelled".into(),
     }
 }
 

@@ -235,7 +235,7 @@ impl Monitor {
                 snap.message = reason.clone();
                 snap.tasks_running.clear();
                 tracing::info!(reason = %reason, "campaign finished");
-                Some(format!("campaign finished: {reason}"))
+                None
             }
             Event::Failed { message } => {
                 snap.phase = "failed".into();

@@ -36,12 +36,14 @@ impl LocalExecutor {
         }
     }
 
-    /// Runs one job to its end (or its timeout, or a kill request).
-    pub async fn run(&self, job: Job, mut kill: KillSwitch) -> Outcome {
+    /// Runs one job to its end (or its timeout, or a kill request). `on_start` is called
+    /// once the job has a slot and is about to start.
+    pub async fn run(&self, job: Job, mut kill: KillSwitch, on_start: impl FnOnce()) -> Outcome {
         let _slot = self.slots.acquire().await.expect("semaphore never closed");
         if *kill.borrow() > StopLevel::Run {
             return cancelled_before_start();
         }
+        on_start();
         let started = Instant::now();
         let mut child = match spawn(&job) {
             Ok(c) => c,
@@ -124,7 +126,7 @@ impl LocalExecutor {
 
 fn cancelled_before_start() -> Outcome {
     Outcome {
-        exit: Exit::Cancelled,
+        exit: Exit::NotStarted,
         wall: Duration::ZERO,
         cpu: Duration::ZERO,
         stdout_tail: String::new(),

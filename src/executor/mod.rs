@@ -60,6 +60,8 @@ pub enum Exit {
     TimedOut,
     /// Ended by tarn because the user asked to stop now.
     Cancelled,
+    /// Never started: the user asked to stop before a slot was free.
+    NotStarted,
     /// Could not be started.
     SpawnFailed(String),
 }

@@ -639,7 +639,7 @@ mod tests {
         let dir = tempfile::tempdir().unwrap();
         let s = Store::create(dir.path(), &meta(), &version()).unwrap();
         s.db.insert(keys::round(1), b"{not json".to_vec()).unwrap();
-        let err = s.rounds().err().expect("damaged");
+        let err = s.rounds().expect_err("damaged");
         assert!(
             err.to_string().contains("record r:00000001 is unreadable"),
             "{err}"
@@ -658,7 +658,7 @@ mod tests {
         v["v"] = 7.into();
         s.db.insert(b"mmeta", serde_json::to_vec(&v).unwrap())
             .unwrap();
-        let err = s.meta().err().expect("refused");
+        let err = s.meta().expect_err("refused");
         assert!(
             err.to_string()
                 .contains("record version Some(7), expected 1"),

@@ -6,7 +6,9 @@
 //! a process like any user's worker and sees only its task directory.
 
 pub mod dedup;
+pub mod evaluate;
 pub mod explore;
+pub mod flow;
 
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
@@ -79,7 +81,11 @@ pub fn main(kind: &str) -> ExitCode {
         "metropolis" => explore::metropolis(&task),
         "langevin" => explore::langevin(&task),
         "metadynamics" => explore::metadynamics_worker(&task),
+        "latent-metropolis" => flow::latent(&task),
+        "generate" => flow::generate(&task),
         "quench" => dedup::quench(&task),
+        "realnvp" => flow::retrain(&task),
+        "reweight" => evaluate::reweight(&task),
         other => Err(format!(
             "'{other}' is not a built-in worker kind this build provides"
         )),
