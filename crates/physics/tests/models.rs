@@ -53,6 +53,12 @@ proptest! {
     }
 
     #[test]
+    fn harmonic_forces_match_finite_differences(q in proptest::collection::vec(-3.0f64..3.0, 5), k in 0.1f64..10.0) {
+        let model = tarn_physics::models::Harmonic { dim: 5, stiffness: k };
+        prop_assert!(fd_force_error(&model, &q) < 1e-6);
+    }
+
+    #[test]
     fn double_well_forces_match_finite_differences(x in -2.0f64..2.0, y in -2.0f64..2.0) {
         prop_assert!(fd_force_error(&DoubleWell::default(), &[x, y]) < 1e-6);
     }
