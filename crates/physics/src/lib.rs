@@ -7,17 +7,17 @@
 
 #![warn(missing_docs)]
 
+pub mod bench;
+pub mod cv;
 pub mod energy;
 pub mod error;
+pub mod explore;
+pub mod external;
+pub mod fingerprint;
 pub mod models;
+pub mod quench;
 pub mod simd;
 
 pub use energy::{check_batch, EnergyError, EnergyModel};
 pub use error::PhysicsError;
 pub use models::SystemSpec;
-pub mod bench;
-pub mod cv;
-pub mod explore;
-pub mod external;
-pub mod fingerprint;
-pub mod quench;
