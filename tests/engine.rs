@@ -369,3 +369,47 @@ fn children_a_worker_leaves_behind_are_ended_with_its_process_group() {
         mode_file.display()
     );
 }
+
+#[test]
+fn an_external_energy_program_drives_the_built_in_explorer_and_quench() {
+    let env = Env::new();
+    let file = repo().join("examples/external-energy/campaign.toml");
+    env.tarn(&["run", file.to_str().unwrap(), "--quiet"])
+        .code(0);
+    let states = env.json(&["states", "piped-ridge"]);
+    let mut energies: Vec<f64> = states
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|s| s["energy"].as_f64().unwrap())
+        .collect();
+    energies.sort_by(f64::total_cmp);
+    // The three Müller–Brown minima (Müller & Brown 1979; recomputed, REFERENCES.md P + R),
+    // reached through the pipe.
+    let want = [-146.699517, -108.166724, -80.767818];
+    assert_eq!(energies.len(), 3, "{states}");
+    for (e, w) in energies.iter().zip(want) {
+        assert!((e - w).abs() < 1e-5, "{e} vs {w}");
+    }
+}
+
+#[test]
+fn an_energy_program_that_dies_gives_a_clear_error() {
+    let env = Env::new();
+    let text = std::fs::read_to_string(repo().join("examples/external-energy/campaign.toml"))
+        .unwrap()
+        .replace(
+            r#"command = ["python3", "muller_brown_server.py"]"#,
+            r#"command = ["python3", "-c", "import sys; sys.exit(0)"]"#,
+        );
+    let file = env.write("dies.toml", &text);
+    let r = env.tarn(&["run", file.to_str().unwrap(), "--quiet"]);
+    r.code(1);
+    assert!(
+        r.stderr
+            .contains("task r0001.hot.w000: the worker exited with status 1"),
+        "{}",
+        r.stderr
+    );
+    assert!(r.stderr.contains("closed its output"), "{}", r.stderr);
+}

@@ -357,7 +357,7 @@ impl Campaign {
                 "must be a positive number (the temperature in the system's energy unit)",
             ));
         }
-        let system = check_system(ctx, &raw.system)?;
+        let system = check_system(ctx, &raw.system, base_dir)?;
         let start = check_start(ctx, &raw.start, system.dim, base_dir)?;
         let mut names = BTreeSet::new();
         if raw.explore.is_empty() {
@@ -527,8 +527,23 @@ fn check_name(ctx: &Ctx, path: &str, name: &str) -> Result<(), SpecError> {
     }
 }
 
-fn check_system(ctx: &Ctx, table: &toml::Table) -> Result<System, SpecError> {
-    let json = toml_to_json(table);
+fn check_system(ctx: &Ctx, table: &toml::Table, base: &Path) -> Result<System, SpecError> {
+    let mut json = toml_to_json(table);
+    // An external model's program runs in each task's directory: resolve its relative
+    // paths against the campaign file's directory, as for stage commands.
+    if let Some(cmd) = json.get_mut("command").and_then(|c| c.as_array_mut()) {
+        let args: Vec<String> = cmd
+            .iter()
+            .filter_map(|v| v.as_str().map(String::from))
+            .collect();
+        if args.len() == cmd.len() && !args.is_empty() {
+            let (p, rest) =
+                crate::engine::resolve_command(&Worker::Command(args), Path::new(""), base);
+            let mut resolved = vec![serde_json::Value::String(p.display().to_string())];
+            resolved.extend(rest.into_iter().map(serde_json::Value::String));
+            *cmd = resolved;
+        }
+    }
     let spec: crate::physics::models::SystemSpec =
         serde_json::from_value(json.clone()).map_err(|e| ctx.err("system", format!("{e}")))?;
     spec.validate()

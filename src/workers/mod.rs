@@ -8,6 +8,7 @@
 pub mod dedup;
 pub mod evaluate;
 pub mod explore;
+pub mod external;
 pub mod flow;
 
 use std::collections::BTreeMap;
@@ -60,7 +61,13 @@ impl Task {
     pub fn model(&self) -> Result<(SystemSpec, Box<dyn EnergyModel>), String> {
         let spec: SystemSpec =
             serde_json::from_value(self.file.system.clone()).map_err(|e| format!("system: {e}"))?;
-        let model = spec.build().map_err(|e| format!("system: {e}"))?;
+        let model: Box<dyn EnergyModel> =
+            match &spec {
+                SystemSpec::External { command, dim } => Box::new(
+                    external::ExternalProcess::start(command, *dim, spec.particle_dims())?,
+                ),
+                _ => spec.build().map_err(|e| format!("system: {e}"))?,
+            };
         Ok((spec, model))
     }
 }

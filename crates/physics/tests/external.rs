@@ -30,7 +30,7 @@ fn spawn(args: &[&str]) -> (Child, Client) {
 
 fn example_path() -> String {
     format!(
-        "{}/examples_py/external_energy.py",
+        "{}/../../examples/external-energy/muller_brown_server.py",
         env!("CARGO_MANIFEST_DIR")
     )
 }
