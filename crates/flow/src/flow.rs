@@ -208,7 +208,7 @@ impl<T: Real> Whitening<T> {
         data: &[f64],
     ) -> Result<Self, FlowError> {
         let (dx, d) = (spec.data_dim, spec.model_dim());
-        if data.len() % dx != 0 || data.len() / dx < 2 {
+        if !data.len().is_multiple_of(dx) || data.len() / dx < 2 {
             return Err(FlowError::Spec(format!(
                 "whitening needs at least 2 initial samples of {dx} values, got {} values",
                 data.len()

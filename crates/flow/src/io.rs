@@ -239,7 +239,7 @@ fn write_safetensors(
     }
     let mut hbytes =
         serde_json::to_vec(&serde_json::Value::Object(header)).expect("a JSON map serialises");
-    while hbytes.len() % 8 != 0 {
+    while !hbytes.len().is_multiple_of(8) {
         hbytes.push(b' ');
     }
     let mut out = Vec::with_capacity(8 + hbytes.len() + offset);

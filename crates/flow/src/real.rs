@@ -288,7 +288,7 @@ mod narrow {
         #[cfg(target_arch = "x86_64")]
         {
             TypeId::of::<T>() == TypeId::of::<f32>()
-                && n % 16 == 0
+                && n.is_multiple_of(16)
                 && (16..=64).contains(&n)
                 && k <= 512
                 && m >= 6

@@ -473,7 +473,7 @@ pub fn train<T: Real>(
 ) -> Result<TrainReport, FlowError> {
     params.validate()?;
     let dx = flow.data_dim();
-    if data.len() % dx != 0 {
+    if !data.len().is_multiple_of(dx) {
         return Err(FlowError::Shape {
             what: "training data",
             expected: dx,

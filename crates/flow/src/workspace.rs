@@ -580,7 +580,7 @@ const REDUCE_CHUNK: usize = 1 << 14;
 
 /// Rows of a row-major slice, or a shape error naming `what`.
 pub(crate) fn rows_of<T>(v: &[T], cols: usize, what: &'static str) -> Result<usize, FlowError> {
-    if cols == 0 || v.len() % cols != 0 {
+    if cols == 0 || !v.len().is_multiple_of(cols) {
         return Err(FlowError::Shape {
             what,
             expected: cols,
