@@ -68,7 +68,10 @@ fn default_clamp() -> f64 {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct FlowSpec {
-    /// Number of data coordinates of one configuration.
+    /// Number of data coordinates of one configuration. May be left out of a campaign
+    /// file (it then reads as 0) for the adapter to fill in from the system; a flow is
+    /// never built with 0.
+    #[serde(default)]
     pub data_dim: usize,
     /// The fixed zero-mode frame between data and flow coordinates.
     #[serde(default)]
