@@ -99,6 +99,15 @@ fn the_flow_corrects_a_wrong_start_ratio_on_the_double_well() {
         .iter()
         .find(|s| s["representative"][0].as_f64().unwrap() < 0.0)
         .expect("left well found");
+    let rounds = env.json(&["rounds", "toggle-switch"]);
+    let stop = rounds.as_array().unwrap().last().unwrap()["stop"]
+        .as_str()
+        .unwrap()
+        .to_string();
+    assert!(
+        stop.contains("free energies of 2 states moved at most"),
+        "it should stop on stability: {stop}"
+    );
     let f = left["free_energy"].as_f64().expect("left well estimated");
     let err = left["free_energy_err"].as_f64().expect("with an error bar");
     eprintln!("double well: F_left − F_right = {f:.4} ± {err:.4} kT, exact {want:.4}");
@@ -107,4 +116,86 @@ fn the_flow_corrects_a_wrong_start_ratio_on_the_double_well() {
         (f - want).abs() < 4.0 * err + 0.02,
         "{f} ± {err} vs exact {want}"
     );
+}
+
+/// Exact basin free energies of Müller–Brown at `kt` by quadrature: the Boltzmann
+/// factor integrated on a grid, each grid point assigned to the basin its quench
+/// (FIRE, steepest-descent-like) ends in — the definition of a basin. Returns
+/// F_s − F_A in kT for the basins in the order of `MULLER_BROWN_MINIMA`.
+fn muller_brown_basin_free_energies(kt: f64, h: f64) -> [f64; 3] {
+    use tarn::physics::quench::{quench_batch, FireParams};
+    use tarn::physics::EnergyModel;
+    let model = tarn::physics::models::MullerBrown::default();
+    let (x0, x1, y0, y1) = (-1.9, 1.4, -0.7, 2.3);
+    let nx = ((x1 - x0) / h) as usize;
+    let ny = ((y1 - y0) / h) as usize;
+    let mut pts = Vec::with_capacity(nx * ny * 2);
+    for i in 0..nx {
+        for j in 0..ny {
+            pts.push(x0 + (i as f64 + 0.5) * h);
+            pts.push(y0 + (j as f64 + 0.5) * h);
+        }
+    }
+    let n = nx * ny;
+    let mut e = vec![0.0; n];
+    model.evaluate(&pts, &mut e, None).unwrap();
+    let fire = FireParams {
+        force_tolerance: 1e-4,
+        ..FireParams::default()
+    };
+    let q = quench_batch(&model, &pts, &fire).unwrap();
+    let mut z = [0.0f64; 3];
+    let emin = MULLER_BROWN_MINIMA[0];
+    for k in 0..n {
+        let basin = MULLER_BROWN_MINIMA
+            .iter()
+            .position(|m| (q.energies[k] - m).abs() < 1e-3);
+        if let Some(b) = basin {
+            z[b] += (-(e[k] - emin) / kt).exp();
+        }
+    }
+    [0.0, -(z[1] / z[0]).ln(), -(z[2] / z[0]).ln()]
+}
+
+#[test]
+fn flow_reweighted_muller_brown_basin_free_energies_match_quadrature() {
+    let exact = muller_brown_basin_free_energies(10.0, 0.005);
+    let coarse = muller_brown_basin_free_energies(10.0, 0.01);
+    eprintln!("Müller–Brown basins at kT = 10 by quadrature: h=0.005 {exact:?}, h=0.01 {coarse:?}");
+    for (a, b) in exact.iter().zip(coarse) {
+        assert!(
+            (a - b).abs() < 0.01,
+            "quadrature not converged: {exact:?} vs {coarse:?}"
+        );
+    }
+    let env = Env::new();
+    run_workflow(&env, "muller-brown-flow.toml");
+    let states = env.json(&["states", "ridge-flow"]);
+    let rounds = env.json(&["rounds", "ridge-flow"]);
+    let stop = rounds.as_array().unwrap().last().unwrap()["stop"]
+        .as_str()
+        .unwrap()
+        .to_string();
+    assert!(
+        stop.contains("free energies of 3 states moved at most"),
+        "it should stop on stability: {stop}"
+    );
+    for s in states.as_array().unwrap() {
+        let energy = s["energy"].as_f64().unwrap();
+        let b = MULLER_BROWN_MINIMA
+            .iter()
+            .position(|m| (energy - m).abs() < 1e-3)
+            .unwrap();
+        let f = s["free_energy"].as_f64().unwrap();
+        let err = s["free_energy_err"].as_f64().unwrap();
+        eprintln!(
+            "basin {b}: {f:.3} ± {err:.3} kT, quadrature {:.3}",
+            exact[b]
+        );
+        assert!(
+            (f - exact[b]).abs() < 3.0 * err + 0.05,
+            "basin {b}: {f} ± {err} vs {}",
+            exact[b]
+        );
+    }
 }

@@ -257,12 +257,13 @@ pub async fn run(
 async fn round_loop(ctx: &Arc<Ctx>) -> Result<RunEnd, EngineError> {
     loop {
         let rounds = ctx.store.rounds()?;
-        let states = ctx.store.states()?.len() as u32;
+        let states = ctx.store.states()?;
         let decision = stop::check(
             &ctx.campaign.stop,
             &stop::Progress {
                 rounds: &rounds,
-                states,
+                states: &states,
+                evaluate_stage: stop::evaluate_stage(&ctx.campaign),
             },
         );
         if let Some(d) = decision {
@@ -431,6 +432,7 @@ fn finish_round(ctx: &Ctx, round: u32, wall: Duration) -> Result<(), EngineError
         wall_seconds: wall.as_secs_f64(),
         finished_unix: now_unix(),
         stop: None,
+        cv_bins: coverage_bins(ctx, round)?,
     };
     let mut rounds = ctx.store.rounds()?;
     rounds.push(rec.clone());
@@ -438,7 +440,8 @@ fn finish_round(ctx: &Ctx, round: u32, wall: Duration) -> Result<(), EngineError
         &ctx.campaign.stop,
         &stop::Progress {
             rounds: &rounds,
-            states: states.len() as u32,
+            states: &states,
+            evaluate_stage: stop::evaluate_stage(&ctx.campaign),
         },
     );
     let mut b = Batch::default();
@@ -463,6 +466,28 @@ fn finish_round(ctx: &Ctx, round: u32, wall: Duration) -> Result<(), EngineError
     });
     write_tables(ctx);
     Ok(())
+}
+
+/// The bins of the coverage rule's collective variable that this round's explore
+/// samples visited (empty without a coverage rule).
+fn coverage_bins(ctx: &Ctx, round: u32) -> Result<Vec<u32>, EngineError> {
+    let Some(c) = &ctx.campaign.stop.coverage else {
+        return Ok(Vec::new());
+    };
+    let (x, _, _) = inputs::round_samples(&ctx.store, &ctx.campaign, round)?;
+    let spec: crate::physics::models::SystemSpec =
+        serde_json::from_value(ctx.campaign.system.table.clone())
+            .map_err(|e| EngineError::Io(format!("system: {e}")))?;
+    let values =
+        c.cv.values(&x.data, ctx.campaign.system.dim, spec.particle_dims())
+            .map_err(|e| EngineError::Io(format!("stop.coverage.cv: {e}")))?;
+    let width = (c.max - c.min) / f64::from(c.bins);
+    let bins: std::collections::BTreeSet<u32> = values
+        .iter()
+        .filter(|v| v.is_finite() && **v >= c.min && **v < c.max)
+        .map(|v| (((v - c.min) / width) as u32).min(c.bins - 1))
+        .collect();
+    Ok(bins.into_iter().collect())
 }
 
 /// Publishes the read side's tables so that `rounds` and `states` work while running.

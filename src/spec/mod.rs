@@ -124,6 +124,22 @@ struct RawStop {
     max_wall_seconds: Option<f64>,
     expected_states: Option<u32>,
     quiet_rounds: Option<u32>,
+    combine: Option<String>,
+    stable_rounds: Option<u32>,
+    stable_tolerance: Option<f64>,
+    stable_max_error: Option<f64>,
+    min_ess_fraction: Option<f64>,
+    coverage: Option<RawCoverage>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawCoverage {
+    cv: toml::Table,
+    min: f64,
+    max: f64,
+    bins: u32,
+    fraction: f64,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -229,7 +245,9 @@ pub struct Stage {
     pub params: serde_json::Value,
 }
 
-/// Rules that end a campaign; the first that holds ends it.
+/// Rules that end a campaign. Budgets (rounds, energy evaluations, wall time) end it
+/// whenever one is spent; the goal rules (states, quiet rounds, coverage, stability,
+/// ESS) end it when any of them holds, or with `combine = "all"` when all of them do.
 #[derive(Debug, Clone, PartialEq)]
 pub struct StopRules {
     pub max_rounds: u32,
@@ -237,6 +255,31 @@ pub struct StopRules {
     pub max_wall_seconds: Option<f64>,
     pub expected_states: Option<u32>,
     pub quiet_rounds: Option<u32>,
+    /// Goal rules must all hold (true) or any one (false).
+    pub all: bool,
+    pub stability: Option<Stability>,
+    pub min_ess_fraction: Option<f64>,
+    pub coverage: Option<Coverage>,
+}
+
+/// Every state's free energy moved by less than `tolerance` kT over the last `rounds`
+/// rounds, and its latest error bar is below `max_error` kT.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Stability {
+    pub rounds: u32,
+    pub tolerance: f64,
+    pub max_error: f64,
+}
+
+/// A fraction of the bins of a collective variable's range has been visited by the
+/// explore samples.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Coverage {
+    pub cv: crate::physics::cv::CollectiveVariable,
+    pub min: f64,
+    pub max: f64,
+    pub bins: u32,
+    pub fraction: f64,
 }
 
 /// Delay growth between attempts of a failed task.
@@ -378,6 +421,12 @@ impl Campaign {
             .map(|s| check_stage(ctx, "evaluate", Role::Evaluate, s, &mut names))
             .transpose()?;
         let stop = check_stop(ctx, raw.stop)?;
+        if let Some(c) = &stop.coverage {
+            let spec: crate::physics::models::SystemSpec =
+                serde_json::from_value(system.table.clone()).expect("validated above");
+            c.cv.validate(system.dim, spec.particle_dims())
+                .map_err(|e| ctx.err("stop.coverage.cv", e.to_string()))?;
+        }
         let executor = check_executor(ctx, raw.executor)?;
         let uses_model = explore
             .iter()
@@ -776,12 +825,84 @@ fn check_stop(ctx: &Ctx, raw: RawStop) -> Result<StopRules, SpecError> {
     if raw.quiet_rounds == Some(0) {
         return Err(ctx.err("stop.quiet_rounds", "must be at least 1"));
     }
+    let all = match raw.combine.as_deref() {
+        None | Some("any") => false,
+        Some("all") => true,
+        Some(o) => return Err(ctx.err("stop.combine", format!("'{o}' is not one of: any, all"))),
+    };
+    let stability = match raw.stable_rounds {
+        None => {
+            for key in ["stable_tolerance", "stable_max_error"] {
+                let set = if key == "stable_tolerance" {
+                    raw.stable_tolerance.is_some()
+                } else {
+                    raw.stable_max_error.is_some()
+                };
+                if set {
+                    return Err(ctx.err(&format!("stop.{key}"), "needs stop.stable_rounds (the number of rounds the estimates must hold still)"));
+                }
+            }
+            None
+        }
+        Some(0) => return Err(ctx.err("stop.stable_rounds", "must be at least 1")),
+        Some(k) => {
+            let tolerance = raw.stable_tolerance.unwrap_or(0.1);
+            let max_error = raw.stable_max_error.unwrap_or(0.1);
+            if !(tolerance.is_finite() && tolerance > 0.0) {
+                return Err(ctx.err("stop.stable_tolerance", "must be a positive number of kT"));
+            }
+            if !(max_error.is_finite() && max_error > 0.0) {
+                return Err(ctx.err("stop.stable_max_error", "must be a positive number of kT"));
+            }
+            Some(Stability {
+                rounds: k,
+                tolerance,
+                max_error,
+            })
+        }
+    };
+    if let Some(f) = raw.min_ess_fraction {
+        if !(f > 0.0 && f <= 1.0) {
+            return Err(ctx.err("stop.min_ess_fraction", "must be in (0, 1]"));
+        }
+    }
+    let coverage = match raw.coverage {
+        None => None,
+        Some(c) => {
+            let cv: crate::physics::cv::CollectiveVariable =
+                serde_json::from_value(toml_to_json(&c.cv))
+                    .map_err(|e| ctx.err("stop.coverage.cv", e.to_string()))?;
+            if !(c.min.is_finite() && c.max.is_finite() && c.min < c.max) {
+                return Err(ctx.err(
+                    "stop.coverage.max",
+                    "the range needs min < max, both finite",
+                ));
+            }
+            if c.bins == 0 || c.bins > 1_000_000 {
+                return Err(ctx.err("stop.coverage.bins", "must be between 1 and 1000000"));
+            }
+            if !(c.fraction > 0.0 && c.fraction <= 1.0) {
+                return Err(ctx.err("stop.coverage.fraction", "must be in (0, 1]"));
+            }
+            Some(Coverage {
+                cv,
+                min: c.min,
+                max: c.max,
+                bins: c.bins,
+                fraction: c.fraction,
+            })
+        }
+    };
     Ok(StopRules {
         max_rounds,
         max_energy_evals: raw.max_energy_evals,
         max_wall_seconds: raw.max_wall_seconds,
         expected_states: raw.expected_states,
         quiet_rounds: raw.quiet_rounds,
+        all,
+        stability,
+        min_ess_fraction: raw.min_ess_fraction,
+        coverage,
     })
 }
 

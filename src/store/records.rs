@@ -177,6 +177,10 @@ pub struct RoundRecord {
     pub finished_unix: f64,
     /// Set on the round after which the campaign stopped.
     pub stop: Option<StopDecision>,
+    /// Bins of the coverage rule's collective variable visited by this round's samples
+    /// (sorted, unique); empty without a coverage rule.
+    #[serde(default)]
+    pub cv_bins: Vec<u32>,
 }
 
 /// A flow model written by a retrain task.

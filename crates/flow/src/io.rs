@@ -1,6 +1,6 @@
 //! The weight file: a `safetensors` byte string holding every tensor of the flow, with
 //! the architecture in the header's `__metadata__`, so that the flow can be rebuilt
-//! without tarn (see `examples_py/load_flow.py`).
+//! without tarn (see `examples/flow-weights/load_flow.py (repository root)`).
 //!
 //! Metadata keys: `format` = "tarn-flow", `format_version` = "1", `architecture` = the
 //! `FlowSpec` as JSON, `convention` = a one-line statement of the direction and formulas.

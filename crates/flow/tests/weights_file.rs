@@ -213,7 +213,10 @@ fn numpy_loader_reproduces_log_q() {
             .collect();
         let pts = dir.join(format!("points{i}.csv"));
         std::fs::write(&pts, csv).unwrap();
-        let script = concat!(env!("CARGO_MANIFEST_DIR"), "/examples_py/load_flow.py");
+        let script = concat!(
+            env!("CARGO_MANIFEST_DIR"),
+            "/../../examples/flow-weights/load_flow.py"
+        );
         let out = std::process::Command::new("python3")
             .arg(script)
             .arg(&path)
