@@ -125,7 +125,7 @@ fn the_flow_corrects_a_wrong_start_ratio_on_the_double_well() {
 fn muller_brown_basin_free_energies(kt: f64, h: f64) -> [f64; 3] {
     use tarn::physics::quench::{quench_batch, FireParams};
     use tarn::physics::EnergyModel;
-    let model = tarn::physics::models::MullerBrown::default();
+    let model = tarn::physics::models::MullerBrown;
     let (x0, x1, y0, y1) = (-1.9, 1.4, -0.7, 2.3);
     let nx = ((x1 - x0) / h) as usize;
     let ny = ((y1 - y0) / h) as usize;
@@ -146,12 +146,12 @@ fn muller_brown_basin_free_energies(kt: f64, h: f64) -> [f64; 3] {
     let q = quench_batch(&model, &pts, &fire).unwrap();
     let mut z = [0.0f64; 3];
     let emin = MULLER_BROWN_MINIMA[0];
-    for k in 0..n {
+    for (ek, qk) in e.iter().zip(&q.energies) {
         let basin = MULLER_BROWN_MINIMA
             .iter()
-            .position(|m| (q.energies[k] - m).abs() < 1e-3);
+            .position(|m| (qk - m).abs() < 1e-3);
         if let Some(b) = basin {
-            z[b] += (-(e[k] - emin) / kt).exp();
+            z[b] += (-(ek - emin) / kt).exp();
         }
     }
     [0.0, -(z[1] / z[0]).ln(), -(z[2] / z[0]).ln()]

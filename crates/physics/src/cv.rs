@@ -104,7 +104,7 @@ impl CollectiveVariable {
                 ),
             })?;
             require(
-                d > 0 && dim % d == 0,
+                d > 0 && dim.is_multiple_of(d),
                 "dims",
                 format!("{d} does not divide the dimension {dim}"),
             )?;
@@ -227,7 +227,7 @@ impl CollectiveVariable {
         model_dims: Option<usize>,
     ) -> Result<Vec<f64>, PhysicsError> {
         self.validate(dim, model_dims)?;
-        if x.len() % dim != 0 {
+        if !x.len().is_multiple_of(dim) {
             return Err(PhysicsError::StartShape { dim, got: x.len() });
         }
         let mut g = vec![0.0; dim];

@@ -89,7 +89,7 @@ pub fn check_batch(
     energy: &[f64],
     forces: Option<&[f64]>,
 ) -> Result<usize, EnergyError> {
-    if dim == 0 || x.len() % dim != 0 {
+    if dim == 0 || !x.len().is_multiple_of(dim) {
         return Err(EnergyError::Shape { dim, got: x.len() });
     }
     let n = x.len() / dim;

@@ -47,7 +47,7 @@ impl Fingerprint {
     pub fn validate(&self, dim: usize) -> Result<(), PhysicsError> {
         match self {
             Fingerprint::PairDistances { dims } => require(
-                *dims > 0 && dim % dims == 0 && dim / dims >= 2,
+                *dims > 0 && dim.is_multiple_of(*dims) && dim / dims >= 2,
                 "dims",
                 format!(
                     "pair distances need at least two particles of {dims} coordinates in dim {dim}"

@@ -310,7 +310,7 @@ pub fn quench_batch(
 ) -> Result<QuenchBatch, PhysicsError> {
     params.validate()?;
     let dim = model.dim();
-    if dim == 0 || x.len() % dim != 0 {
+    if dim == 0 || !x.len().is_multiple_of(dim) {
         return Err(PhysicsError::StartShape { dim, got: x.len() });
     }
     let n = x.len() / dim;

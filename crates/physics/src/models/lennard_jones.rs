@@ -382,7 +382,7 @@ fn apply_pair<const D: usize>(s: &Lanes, dd: &[Lanes; D], fi: &mut [Lanes; D], f
 /// Moves one configuration of particles in `dims` dimensions into its centre-of-mass
 /// frame (subtracts the mean position), removing the translational zero mode.
 pub fn centre_of_mass_frame(x: &mut [f64], dims: usize) {
-    if dims == 0 || x.len() % dims != 0 || x.is_empty() {
+    if dims == 0 || !x.len().is_multiple_of(dims) || x.is_empty() {
         return;
     }
     let n = (x.len() / dims) as f64;

@@ -158,7 +158,7 @@ fn site_rows_sized<const FMA: bool>(
         let out = forces
             .as_deref_mut()
             .map(|f| &mut f[row * size..(row + 1) * size]);
-        if size % LANES == 0 {
+        if size.is_multiple_of(LANES) {
             row_kernel::<FMA, LANES>(
                 cur, right, left, up, down, m2, lambda, c_lin, c_cub, out, &mut acc,
             );
