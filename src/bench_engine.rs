@@ -101,6 +101,29 @@ fn bare_spawns(task_dir: &Path, n: u32) -> anyhow::Result<f64> {
     Ok(t.elapsed().as_secs_f64())
 }
 
+/// A task directory exactly like the engine's first task of the campaign, for the bare
+/// spawns.
+fn prepare_bare_task(tmp: &Path, file: &Path, store: &crate::store::Store) -> anyhow::Result<()> {
+    let c = Campaign::load(file).map_err(|e| anyhow::anyhow!("{e}"))?;
+    let task_dir = tmp.join("bare");
+    std::fs::create_dir_all(task_dir.join("in"))?;
+    std::fs::create_dir_all(task_dir.join("out"))?;
+    let stage = &c.explore[0];
+    let tref = inputs::TaskRef::new(&c, 1, 0, stage, 0);
+    let prepared = inputs::prepare(store, &c, stage, &tref)?;
+    std::fs::write(
+        task_dir.join("in/start.npy"),
+        crate::protocol::npy::encode_f64(&prepared.inputs["start"]),
+    )?;
+    let task_json = serde_json::json!({
+        "protocol": 1, "task_id": tref.id, "campaign": c.name, "round": 1, "stage": stage.name,
+        "role": "explore", "kind": "hold", "walker": 0, "walkers": 1, "seed": tref.seed, "kT": c.kt,
+        "threads": 1, "system": c.system.table, "params": {}, "inputs": {"start": "in/start.npy"}, "model": null
+    });
+    std::fs::write(task_dir.join("task.json"), serde_json::to_vec(&task_json)?)?;
+    Ok(())
+}
+
 /// Runs the engine benchmark.
 pub fn run(json: bool, tasks: u32) -> anyhow::Result<u8> {
     let tmp = std::env::temp_dir().join(format!("tarn-bench-{}", std::process::id()));
@@ -119,51 +142,42 @@ fn emit(json: bool, row: Row) {
 }
 
 fn measure(tmp: &Path, tasks: u32, json: bool) -> anyhow::Result<u8> {
-    // 1. Overhead per task, one task at a time, against the same worker spawned bare.
-    let file = tmp.join("overhead.toml");
-    std::fs::write(&file, campaign_text("overhead", tasks, 1, 1))?;
-    let t = Instant::now();
-    run_in_process(tmp, &file, false)?;
-    let engine_total = t.elapsed().as_secs_f64();
-    let store = crate::store::Store::open(&tmp.join("state/overhead")).context("reopen")?;
-    let dedup_wall: f64 = store
-        .round_tasks(1)?
-        .iter()
-        .filter(|t| t.role == crate::protocol::Role::Dedup)
-        .flat_map(|t| t.attempts.iter().map(|a| a.wall_seconds))
-        .sum();
-    // A task directory exactly like the engine's, for the bare spawns.
-    let c = Campaign::load(&file).map_err(|e| anyhow::anyhow!("{e}"))?;
-    let task_dir = tmp.join("bare");
-    std::fs::create_dir_all(task_dir.join("in"))?;
-    std::fs::create_dir_all(task_dir.join("out"))?;
-    let stage = &c.explore[0];
-    let tref = inputs::TaskRef::new(&c, 1, 0, stage, 0);
-    let prepared = inputs::prepare(&store, &c, stage, &tref)?;
-    std::fs::write(
-        task_dir.join("in/start.npy"),
-        crate::protocol::npy::encode_f64(&prepared.inputs["start"]),
-    )?;
-    let task_json = serde_json::json!({
-        "protocol": 1, "task_id": tref.id, "campaign": c.name, "round": 1, "stage": stage.name,
-        "role": "explore", "kind": "hold", "walker": 0, "walkers": 1, "seed": tref.seed, "kT": c.kt,
-        "threads": 1, "system": c.system.table, "params": {}, "inputs": {"start": "in/start.npy"}, "model": null
-    });
-    std::fs::write(task_dir.join("task.json"), serde_json::to_vec(&task_json)?)?;
-    drop(store);
-    let bare = bare_spawns(&task_dir, tasks)?;
-    let engine_explore = engine_total - dedup_wall;
-    let per_task = engine_explore / f64::from(tasks) * 1e3;
-    let per_spawn = bare / f64::from(tasks) * 1e3;
+    // 1. Overhead per task, one task at a time, against the same worker spawned bare;
+    // three alternations, the best of each, because the machine may be shared.
+    let mut best_engine = f64::INFINITY;
+    let mut best_bare = f64::INFINITY;
+    for rep in 0..3 {
+        let name = format!("overhead{rep}");
+        let file = tmp.join(format!("{name}.toml"));
+        std::fs::write(&file, campaign_text(&name, tasks, 1, 1))?;
+        let t = Instant::now();
+        run_in_process(tmp, &file, false)?;
+        let engine_total = t.elapsed().as_secs_f64();
+        let store = crate::store::Store::open(&tmp.join("state").join(&name)).context("reopen")?;
+        let dedup_wall: f64 = store
+            .round_tasks(1)?
+            .iter()
+            .filter(|t| t.role == crate::protocol::Role::Dedup)
+            .flat_map(|t| t.attempts.iter().map(|a| a.wall_seconds))
+            .sum();
+        best_engine = best_engine.min(engine_total - dedup_wall);
+        if rep == 0 {
+            prepare_bare_task(tmp, &file, &store)?;
+        }
+        drop(store);
+        best_bare = best_bare.min(bare_spawns(&tmp.join("bare"), tasks)?);
+    }
+    let per_task = best_engine / f64::from(tasks) * 1e3;
+    let per_spawn = best_bare / f64::from(tasks) * 1e3;
     emit(
         json,
         Row {
             bench: "overhead",
             figures: serde_json::json!({
-                "tasks": tasks, "max_parallel": 1,
+                "tasks": tasks, "max_parallel": 1, "repeats": 3,
                 "engine_ms_per_task": round3(per_task), "bare_spawn_ms": round3(per_spawn),
                 "overhead_ms_per_task": round3(per_task - per_spawn),
-                "note": "engine time excludes the round's one dedup task; includes task directories, task.json, inputs, validation, durable commit"
+                "note": "best of 3 alternations; engine time excludes the round's one dedup task and includes task directories, task.json, inputs, validation and the durable commit"
             }),
         },
     );

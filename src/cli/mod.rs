@@ -124,8 +124,11 @@ pub enum Command {
         kind: String,
     },
     /// Benchmarks that print figures (one JSON object per row with --json).
+    #[command(
+        after_help = "Benchmarks:\n  engine  orchestration overhead per task, reopen time, engine memory\n  energy  energy-and-force throughput against the measured f64 peak; an external model through its pipe\n  flow    RealNVP training and sampling throughput against the measured f32 GEMM peak"
+    )]
     Bench {
-        /// What to measure: engine.
+        /// What to measure: engine, energy or flow.
         what: String,
         #[arg(long)]
         json: bool,

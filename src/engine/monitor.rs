@@ -6,7 +6,8 @@
 
 use std::io::IsTerminal;
 use std::path::PathBuf;
-use std::sync::Mutex;
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
 
 use indicatif::{MultiProgress, ProgressBar, ProgressDrawTarget, ProgressStyle};
 
@@ -60,9 +61,17 @@ pub enum Event {
 
 /// Renders events and keeps the snapshot.
 pub struct Monitor {
-    inner: Mutex<Inner>,
+    inner: Arc<Mutex<Inner>>,
     snapshot_dir: PathBuf,
+    /// When the snapshot was last written; task-level events within
+    /// [`PUBLISH_EVERY`] of it only mark it stale, and a background thread writes it.
+    last_publish: Arc<Mutex<(Instant, bool)>>,
 }
+
+/// Task-level events are folded into the snapshot at most this often (round-level and
+/// final events are written at once), so that short tasks do not pay for a file write
+/// each.
+const PUBLISH_EVERY: Duration = Duration::from_millis(100);
 
 struct Inner {
     snap: Snapshot,
@@ -98,11 +107,31 @@ impl Monitor {
             }
         });
         let m = Monitor {
-            inner: Mutex::new(Inner { snap, bars, quiet }),
+            inner: Arc::new(Mutex::new(Inner { snap, bars, quiet })),
             snapshot_dir: dir,
+            last_publish: Arc::new(Mutex::new((Instant::now(), false))),
         };
         m.publish();
+        m.start_flusher();
         m
+    }
+
+    /// Writes a stale snapshot every [`PUBLISH_EVERY`]; ends when the monitor is dropped.
+    fn start_flusher(&self) {
+        let inner = Arc::downgrade(&self.inner);
+        let last = Arc::downgrade(&self.last_publish);
+        let dir = self.snapshot_dir.clone();
+        std::thread::spawn(move || loop {
+            std::thread::sleep(PUBLISH_EVERY);
+            let (Some(inner), Some(last)) = (inner.upgrade(), last.upgrade()) else {
+                return;
+            };
+            let stale = std::mem::replace(&mut last.lock().expect("publish lock").1, false);
+            if stale {
+                let snap = inner.lock().expect("monitor lock").snap.clone();
+                let _ = snapshot::write_json(&snapshot::path(&dir), &snap);
+            }
+        });
     }
 
     /// Prints a line above the progress view (or plainly).
@@ -123,7 +152,13 @@ impl Monitor {
         if let Some(t) = text {
             self.line(&t);
         }
-        self.publish();
+        let task_level = matches!(event, Event::TaskStarted { .. } | Event::TaskDone { .. });
+        let recent = self.last_publish.lock().expect("publish lock").0.elapsed() < PUBLISH_EVERY;
+        if task_level && recent {
+            self.last_publish.lock().expect("publish lock").1 = true;
+        } else {
+            self.publish();
+        }
     }
 
     fn apply(&self, event: &Event) -> Option<String> {
@@ -266,6 +301,7 @@ impl Monitor {
     }
 
     fn publish(&self) {
+        *self.last_publish.lock().expect("publish lock") = (Instant::now(), false);
         let snap = self.inner.lock().expect("monitor lock").snap.clone();
         if let Err(e) = snapshot::write_json(&snapshot::path(&self.snapshot_dir), &snap) {
             tracing::warn!(error = %e, "cannot write the status snapshot");

@@ -5,6 +5,8 @@
 //! Must not touch: the engine's control flow; it only reads.
 
 pub mod export;
+pub mod html;
+pub mod plots;
 
 use serde::{Deserialize, Serialize};
 
