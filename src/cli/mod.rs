@@ -115,6 +115,13 @@ pub enum Command {
         #[arg(long, value_name = "DIR")]
         out: PathBuf,
     },
+    /// Write the campaign report: one self-contained HTML file with plots. The running
+    /// engine also refreshes STATE/NAME/report.html after every round.
+    Report {
+        name: String,
+        #[arg(long, value_name = "FILE.html")]
+        out: PathBuf,
+    },
     /// A hash of all scientific content (no times, hosts or durations): equal digests
     /// mean equal results.
     Digest { name: String },
@@ -237,6 +244,22 @@ fn dispatch(cli: &Cli) -> Result<u8, Failure> {
                 out.display(),
                 files.join(", ")
             );
+            Ok(EXIT_OK)
+        }
+        Command::Report { name, out } => {
+            let dir = engine::campaign_dir(&cli.state, name);
+            match Store::open(&dir) {
+                Ok(store) => report::html::write_report(&store, out)?,
+                Err(StoreError::Locked { .. }) => {
+                    let live = dir.join("report.html");
+                    std::fs::copy(&live, out).map_err(|e| {
+                        Failure::input(format!("the campaign is running and {} cannot be copied ({e}); it appears after the first round", live.display()))
+                    })?;
+                    eprintln!("campaign {name} is running: copied the report it published after its last round");
+                }
+                Err(e) => return Err(e.into()),
+            }
+            println!("wrote {}", out.display());
             Ok(EXIT_OK)
         }
         Command::Digest { name } => {

@@ -490,8 +490,17 @@ fn coverage_bins(ctx: &Ctx, round: u32) -> Result<Vec<u32>, EngineError> {
     Ok(bins.into_iter().collect())
 }
 
-/// Publishes the read side's tables so that `rounds` and `states` work while running.
+/// Publishes the read side's tables so that `rounds` and `states` work while running,
+/// and refreshes the campaign report (`report.html`, written then renamed).
 fn write_tables(ctx: &Ctx) {
+    let report = ctx.dir.join("report.html");
+    let tmp = ctx.dir.join("report.html.tmp");
+    match crate::report::html::write_report(&ctx.store, &tmp)
+        .and_then(|_| Ok(std::fs::rename(&tmp, &report)?))
+    {
+        Ok(()) => {}
+        Err(e) => tracing::warn!(error = %e, "cannot refresh report.html"),
+    }
     let tables = crate::report::tables(&ctx.store);
     match tables {
         Ok(t) => {
@@ -559,7 +568,7 @@ async fn run_task_inner(
         let mut attempt = attempt_of(number, &outcome, started_unix);
         let failure = match &outcome.exit {
             Exit::NotStarted => {
-                let _ = std::fs::remove_dir_all(&attempt_dir);
+                remove_attempt_dir(&attempt_dir);
                 return Ok(RunEnd::Interrupted);
             }
             Exit::Cancelled => {
@@ -597,7 +606,7 @@ async fn run_task_inner(
                                 skipped: false,
                             });
                             if ctx.campaign.executor.keep_task_dirs != KeepDirs::All {
-                                let _ = std::fs::remove_dir_all(&attempt_dir);
+                                remove_attempt_dir(&attempt_dir);
                             }
                             return Ok(RunEnd::Finished(placeholder()));
                         }
@@ -641,7 +650,7 @@ async fn run_task_inner(
         )?;
         attempts.push(attempt);
         if ctx.campaign.executor.keep_task_dirs == KeepDirs::None {
-            let _ = std::fs::remove_dir_all(&attempt_dir);
+            remove_attempt_dir(&attempt_dir);
         }
         let delay = (!final_attempt).then(|| policy.delay(number + 1, task.seed));
         ctx.monitor.emit(Event::AttemptFailed {
@@ -659,6 +668,19 @@ async fn run_task_inner(
         }
     }
     Ok(RunEnd::Failed(format!("{last_error}\n(the task failed {} attempts; fix the worker or the campaign, then `tarn resume {}`)", policy.attempts, ctx.campaign.name)))
+}
+
+/// Removes an attempt's directory and the task and round directories above it when
+/// they are left empty.
+fn remove_attempt_dir(dir: &Path) {
+    let _ = std::fs::remove_dir_all(dir);
+    let mut up = dir.parent();
+    for _ in 0..2 {
+        match up {
+            Some(p) if std::fs::remove_dir(p).is_ok() => up = p.parent(),
+            _ => break,
+        }
+    }
 }
 
 /// Stores a failed or cancelled attempt without touching anything committed.
