@@ -31,6 +31,11 @@ pub const TEMPLATES: &[Template] = &[
         text: include_str!("../../workflows/lj7-surface.toml"),
     },
     Template {
+        name: "lj7-surface-flow",
+        summary: "the same cluster by a Boltzmann generator: latent Metropolis finds what cold Langevin cannot",
+        text: include_str!("../../workflows/lj7-surface-flow.toml"),
+    },
+    Template {
         name: "phi4-lattice",
         summary: "a ferromagnetic film (8x8 lattice phi^4, broken phase): metadynamics on the magnetisation",
         text: include_str!("../../workflows/phi4-lattice.toml"),
