@@ -158,7 +158,7 @@ impl Context {
             Some(SystemSpec::LennardJones { .. }) => "ε",
             Some(SystemSpec::Phi4 { .. }) => "lattice action units",
             Some(SystemSpec::External { .. }) => "the external model's unit",
-            _ => "model energy units",
+            _ => "model units",
         }
     }
 
@@ -180,7 +180,7 @@ fn group(n: u64) -> String {
     let s = n.to_string();
     let mut out = String::new();
     for (i, ch) in s.chars().enumerate() {
-        if i > 0 && (s.len() - i) % 3 == 0 {
+        if i > 0 && (s.len() - i).is_multiple_of(3) {
             out.push('\u{2009}');
         }
         out.push(ch);
@@ -280,14 +280,16 @@ ul.legend { list-style: none; padding: 0; margin: 8px 0 0; display: flex; flex-w
 .ramp { height: 12px; border-radius: 6px; max-width: 420px; margin-top: 10px; }
 .ramp-labels { display: flex; justify-content: space-between; max-width: 420px; font-size: 13px; color: var(--muted); }
 .table-wrap { overflow-x: auto; max-height: 640px; overflow-y: auto; border: 1px solid var(--line); border-radius: 6px; }
-table { border-collapse: collapse; width: 100%; font-size: 14px; font-variant-numeric: tabular-nums; }
-th, td { padding: 6px 10px; border-bottom: 1px solid var(--line); text-align: right; white-space: nowrap; }
+table { border-collapse: collapse; width: 100%; font-size: 13.5px; font-variant-numeric: tabular-nums; }
+th, td { padding: 6px 8px; border-bottom: 1px solid var(--line); text-align: right; white-space: nowrap; }
 th { position: sticky; top: 0; background: #f3f1eb; font-weight: 600; font-size: 13px; color: #3b4a50;
   white-space: normal; vertical-align: bottom; }
 th.l, td.l { text-align: left; }
 tbody tr:nth-child(even) { background: #f8f7f2; }
 td.stop { white-space: normal; text-align: left; min-width: 260px; }
 tr.stopped td { background: #eef4f1; }
+table.grouped th { position: static; }
+th.group { text-align: center; border-bottom: 1px solid #cfcabd; }
 details summary { cursor: pointer; color: var(--accent); }
 pre.source { background: #f6f4ee; border: 1px solid var(--line); border-radius: 6px; padding: 12px 14px;
   overflow-x: auto; font: 13px/1.45 ui-monospace, "SFMono-Regular", Menlo, Consolas, monospace; }
@@ -906,9 +908,13 @@ fn catalogue_section(c: &Context) -> String {
     let show_min = c.states.iter().all(|s| s.representative.len() <= 3);
     let _ = write!(
         out,
-        "<div class=\"table-wrap\"><table id=\"catalogue-table\">\n<thead><tr><th class=\"l\">state</th><th>energy [{}]</th>{}<th>round</th><th class=\"l\">stage</th><th class=\"l\">task</th><th>walker</th><th>seed</th><th>sample</th><th>cost to find [energy evals]</th><th>sightings</th><th>F ± error [kT]</th><th>estimated in round</th></tr></thead>\n<tbody>\n",
+        "<div class=\"table-wrap\"><table id=\"catalogue-table\" class=\"grouped\">\n<thead><tr><th class=\"l\" rowspan=\"2\">state</th><th rowspan=\"2\">energy [{}]</th><th rowspan=\"2\">F ± error [kT]</th><th rowspan=\"2\">estimated in round</th>{}<th class=\"group\" colspan=\"6\">first sighting</th><th rowspan=\"2\">cost to find [energy evaluations]</th><th rowspan=\"2\">sightings</th></tr>\n<tr><th>round</th><th class=\"l\">stage</th><th class=\"l\">task</th><th>walker</th><th>seed</th><th>sample</th></tr></thead>\n<tbody>\n",
         escape(unit),
-        if show_min { "<th class=\"l\">minimum</th>" } else { "" }
+        if show_min {
+            "<th class=\"l\" rowspan=\"2\">minimum</th>"
+        } else {
+            ""
+        }
     );
     for (i, s) in c.states.iter().enumerate() {
         let minimum = if show_min {
@@ -923,10 +929,12 @@ fn catalogue_section(c: &Context) -> String {
             .map_or("–".to_string(), |e| e.round.to_string());
         let _ = writeln!(
             out,
-            "<tr><td class=\"l\"><span class=\"swatch\" style=\"background:{}\"></span>{}</td><td>{:.6}</td>{minimum}<td>{}</td><td class=\"l\">{}</td><td class=\"l\"><code>{}</code></td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+            "<tr><td class=\"l\"><span class=\"swatch\" style=\"background:{}\"></span>{}</td><td>{:.6}</td><td>{}</td><td>{}</td>{minimum}<td>{}</td><td class=\"l\">{}</td><td class=\"l\"><code>{}</code></td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
             plots::css(plots::state_colour(i)),
             s.id,
             s.energy,
+            free_energy_text(s),
+            est_round,
             s.found.round,
             escape(&s.found.stage),
             escape(&s.found.task),
@@ -935,8 +943,6 @@ fn catalogue_section(c: &Context) -> String {
             s.found.sample_index,
             group(s.found.cost_to_find),
             group(s.sightings.values().sum()),
-            free_energy_text(s),
-            est_round
         );
     }
     out.push_str("</tbody></table></div>\n</section>\n");
@@ -963,7 +969,7 @@ fn rounds_section(c: &Context) -> String {
         return out;
     }
     let ess: std::collections::BTreeMap<u32, f64> = ess_points(c).into_iter().collect();
-    out.push_str("<div class=\"table-wrap\"><table id=\"rounds-table\">\n<thead><tr><th>round</th><th>new states</th><th>states</th><th>energy evaluations</th><th>cumulative</th><th>CPU s</th><th>wall s</th><th>ESS fraction</th><th class=\"l\">stop reason</th></tr></thead>\n<tbody>\n");
+    out.push_str("<div class=\"table-wrap\"><table id=\"rounds-table\">\n<thead><tr><th>round</th><th>new states</th><th>states</th><th>energy evaluations</th><th>cumulative</th><th>CPU&nbsp;s</th><th>wall&nbsp;s</th><th>ESS fraction</th><th class=\"l\">stop reason</th></tr></thead>\n<tbody>\n");
     for r in &c.rounds {
         let stop = r
             .stop

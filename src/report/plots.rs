@@ -377,11 +377,14 @@ pub struct StateTrack {
     pub points: Vec<(u32, f64, Option<f64>)>,
 }
 
+/// A track's colour index and its finite (round, F, error) points.
+type FiniteTrack = (usize, Vec<(f64, f64, f64)>);
+
 /// The free energy of each state by round, with error bars (one standard error). Error
 /// bars are thinned to at most 60 per state so that a long campaign stays light; the
 /// line passes through every estimate.
 pub fn free_energies(tracks: &[StateTrack], axes: Axes) -> Result<String, PlotError> {
-    let finite: Vec<(usize, Vec<(f64, f64, f64)>)> = tracks
+    let finite: Vec<FiniteTrack> = tracks
         .iter()
         .map(|t| {
             let pts = t
@@ -579,7 +582,7 @@ pub fn contour_lines(grid: &Grid, level: f64) -> Vec<Vec<(f64, f64)>> {
     let point = |edge: usize| -> (f64, f64) {
         let cell = edge / 2;
         let (i, j) = (cell % nx, cell / nx);
-        let (a, b, di, dj) = if edge % 2 == 0 {
+        let (a, b, di, dj) = if edge.is_multiple_of(2) {
             (grid.at(i, j), grid.at(i + 1, j), 1.0, 0.0)
         } else {
             (grid.at(i, j), grid.at(i, j + 1), 0.0, 1.0)
