@@ -135,6 +135,26 @@ fn the_flow_corrects_a_wrong_start_ratio_on_the_double_well() {
     let f = left["free_energy"].as_f64().expect("left well estimated");
     let err = left["free_energy_err"].as_f64().expect("with an error bar");
     eprintln!("double well: F_left − F_right = {f:.4} ± {err:.4} kT, exact {want:.4}");
+    // ln Z by importance sampling against the quadrature's ln Z, and the reweighted
+    // profile along x against the exact marginal (both from the last evaluation).
+    let last = rounds.as_array().unwrap().last().unwrap();
+    let metrics = &last["stages"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|s| s["name"] == "evaluate")
+        .unwrap()["metrics"];
+    let (log_z, log_z_err) = (
+        metrics["log_z"].as_f64().unwrap(),
+        metrics["log_z_err"].as_f64().unwrap(),
+    );
+    eprintln!("double well: ln Z = {log_z:.4} ± {log_z_err:.4}, exact {:.4}; profile Boltzmann-weighted RMS {} kT", exact.ln_z, metrics["profile_boltzmann_rms"]);
+    assert!(
+        (log_z - exact.ln_z).abs() < 4.0 * log_z_err + 0.01,
+        "ln Z {log_z} ± {log_z_err} vs {}",
+        exact.ln_z
+    );
+    assert!(metrics["profile_boltzmann_rms"].as_f64().unwrap() < 0.2);
     assert!((f - want).abs() < 0.1, "{f} vs exact {want}");
     assert!(
         (f - want).abs() < 4.0 * err + 0.02,

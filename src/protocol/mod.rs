@@ -330,7 +330,12 @@ fn check_outputs(
         Role::Explore => &["samples", "energies", "log_weights", "cv", "bias"],
         Role::Dedup => &["labels", "new_states", "new_energies", "keep"],
         Role::Retrain => &[],
-        Role::Evaluate => &["free_energy", "free_energy_err"],
+        Role::Evaluate => &[
+            "free_energy",
+            "free_energy_err",
+            "profile",
+            "profile_reference",
+        ],
     };
     if let Some(extra) = arrays.keys().find(|k| !allowed.contains(&k.as_str())) {
         return Err(ResultError::new(
@@ -410,6 +415,12 @@ fn check_outputs(
             }
         }
         Role::Evaluate => {
+            if let Some((pp, prof)) = get("profile") {
+                let bins = check_matrix(pp, "profile", prof, None, 3)?;
+                if let Some((rp, r)) = get("profile_reference") {
+                    check_vector(rp, "profile_reference", r, bins)?;
+                }
+            }
             for name in ["free_energy", "free_energy_err"] {
                 if let Some((p, a)) = get(name) {
                     check_vector(p, name, a, want.n_known)?;

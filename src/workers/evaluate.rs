@@ -13,10 +13,15 @@ use serde::Deserialize;
 
 use super::{rng, Output, Task};
 use crate::flow::{generate, Flow};
+use crate::physics::cv::CollectiveVariable;
 use crate::physics::fingerprint::{assign, Fingerprint, StateTolerance};
 use crate::physics::quench::{quench_batch, FireParams, QuenchStatus};
+use crate::physics::{EnergyModel, SystemSpec};
 use crate::protocol::Array;
-use crate::stats::{log_partition_estimate, state_free_energies, BootstrapOptions};
+use crate::stats::{
+    compare_profiles, free_energy_profile, log_partition_estimate, reference_profile,
+    state_free_energies, Alignment, Bins, BootstrapOptions,
+};
 
 /// Parameters of the `reweight` kind.
 #[derive(Debug, Deserialize)]
@@ -31,6 +36,18 @@ struct ReweightParams {
     max_steps: u64,
     energy_tolerance: f64,
     fingerprint_tolerance: f64,
+    /// A 1-D free-energy profile along a collective variable (optional).
+    profile: Option<ProfileParams>,
+}
+
+/// `profile = { cv = { cv = "coordinate", index = 0 }, min = -1.5, max = 1.5, bins = 40 }`
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct ProfileParams {
+    cv: CollectiveVariable,
+    min: f64,
+    max: f64,
+    bins: usize,
 }
 
 impl Default for ReweightParams {
@@ -44,6 +61,7 @@ impl Default for ReweightParams {
             max_steps: fire.max_steps,
             energy_tolerance: tol.energy,
             fingerprint_tolerance: tol.fingerprint,
+            profile: None,
         }
     }
 }
@@ -138,5 +156,127 @@ pub fn reweight(task: &Task) -> Result<Output, String> {
         "reference_state".into(),
         Some(f64::from(est.reference_state)),
     );
+    if let Some(pp) = &p.profile {
+        let fin_w: Vec<f64> = finite.iter().map(|&i| g.log_weight[i]).collect();
+        profile(
+            task,
+            &spec,
+            model.as_ref(),
+            pp,
+            &xs,
+            &fin_w,
+            &opts,
+            &mut out,
+        )?;
+    }
     Ok(out)
+}
+
+/// The reweighted 1-D profile with bootstrap errors, and for the built-in 2-D models
+/// with a coordinate variable the exact profile by quadrature and the RMS difference.
+#[allow(clippy::too_many_arguments)]
+fn profile(
+    task: &Task,
+    spec: &SystemSpec,
+    model: &dyn EnergyModel,
+    pp: &ProfileParams,
+    xs: &[f64],
+    log_w: &[f64],
+    opts: &BootstrapOptions,
+    out: &mut Output,
+) -> Result<(), String> {
+    let dim = model.dim();
+    let bins = Bins::new(pp.min, pp.max, pp.bins).map_err(|e| format!("params.profile: {e}"))?;
+    let cv = pp
+        .cv
+        .values(xs, dim, model.particle_dims())
+        .map_err(|e| format!("params.profile.cv: {e}"))?;
+    // Its own random stream, so that adding a profile leaves the state free energies'
+    // bootstrap replicates as they were.
+    let mut r = {
+        use rand::SeedableRng;
+        rand_chacha::ChaCha8Rng::seed_from_u64(task.file.seed ^ 0x9E37_79B9_7F4A_7C15)
+    };
+    let prof = free_energy_profile(&cv, log_w, &bins, opts, &mut r)
+        .map_err(|e| format!("profile: {e}"))?;
+    let mut rows = Vec::with_capacity(pp.bins * 3);
+    for b in 0..pp.bins {
+        rows.push(prof.centers[b]);
+        rows.push(prof.free_energy[b].unwrap_or(f64::NAN));
+        rows.push(prof.err[b].unwrap_or(f64::NAN));
+    }
+    out.arrays
+        .insert("profile".into(), Array::matrix(pp.bins, 3, rows));
+    if let (Some(axis), 2) = (coordinate_index(&pp.cv), dim) {
+        if let Some(reference) = exact_profile_2d(spec, model, axis, task.file.kt, &bins)? {
+            let cmp = compare_profiles(
+                &prof.free_energy,
+                &reference,
+                Alignment::BoltzmannMean,
+                Some(10.0),
+            )
+            .map_err(|e| format!("profile: {e}"))?;
+            out.metrics.insert("profile_rms".into(), Some(cmp.rms));
+            out.metrics
+                .insert("profile_boltzmann_rms".into(), Some(cmp.boltzmann_rms));
+            out.arrays
+                .insert("profile_reference".into(), Array::vector(reference));
+        }
+    }
+    Ok(())
+}
+
+fn coordinate_index(cv: &CollectiveVariable) -> Option<usize> {
+    match cv {
+        CollectiveVariable::Coordinate { index } => Some(*index),
+        _ => None,
+    }
+}
+
+/// F(s) = −ln ∫ exp(−U/kT) dy of a built-in 2-D model, bin-averaged by Simpson's rule,
+/// with the other coordinate integrated by the trapezoid rule over a range that holds
+/// all of the model's low-energy region. `None` for models without a known range.
+fn exact_profile_2d(
+    spec: &SystemSpec,
+    model: &dyn EnergyModel,
+    axis: usize,
+    kt: f64,
+    bins: &Bins,
+) -> Result<Option<Vec<f64>>, String> {
+    let (lo, hi) = match (spec, axis) {
+        (SystemSpec::MullerBrown { .. }, 0) => (-0.8, 2.6),
+        (SystemSpec::MullerBrown { .. }, _) => (-2.2, 1.6),
+        (SystemSpec::DoubleWell { .. }, 0) => (-6.0, 6.0),
+        (SystemSpec::DoubleWell { .. }, _) => (-3.0, 3.0),
+        _ => return Ok(None),
+    };
+    let n = 4001;
+    let h = (hi - lo) / (n - 1) as f64;
+    let u = |s: f64| -> f64 {
+        let mut pts = Vec::with_capacity(2 * n);
+        for k in 0..n {
+            let other = lo + k as f64 * h;
+            if axis == 0 {
+                pts.extend_from_slice(&[s, other]);
+            } else {
+                pts.extend_from_slice(&[other, s]);
+            }
+        }
+        let mut e = vec![0.0; n];
+        if model.evaluate(&pts, &mut e, None).is_err() {
+            return f64::INFINITY;
+        }
+        let m = e.iter().fold(f64::INFINITY, |a, b| a.min(*b)) / kt;
+        let sum: f64 = e
+            .iter()
+            .enumerate()
+            .map(|(k, v)| {
+                let w = if k == 0 || k == n - 1 { 0.5 } else { 1.0 };
+                w * (-(v / kt) + m).exp()
+            })
+            .sum();
+        m - (sum * h).ln()
+    };
+    let r = reference_profile(u, bins, 8).map_err(|e| format!("reference profile: {e}"))?;
+    Ok(Some(r))
 }
