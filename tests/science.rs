@@ -243,3 +243,43 @@ fn flow_reweighted_muller_brown_basin_free_energies_match_quadrature() {
         );
     }
 }
+
+#[test]
+fn the_relaxed_latent_path_from_a_to_c_finds_the_published_saddle() {
+    let env = Env::new();
+    run_workflow(&env, "muller-brown-flow.toml");
+    let states = env.json(&["states", "ridge-flow"]);
+    let id_of = |e: f64| {
+        states
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|s| (s["energy"].as_f64().unwrap() - e).abs() < 1e-3)
+            .unwrap()["id"]
+            .as_u64()
+            .unwrap()
+            .to_string()
+    };
+    let (a, c) = (id_of(MULLER_BROWN_MINIMA[0]), id_of(MULLER_BROWN_MINIMA[2]));
+    let p = env.json(&[
+        "path",
+        "ridge-flow",
+        "--from",
+        &a,
+        "--to",
+        &c,
+        "--images",
+        "16",
+        "--relax",
+    ]);
+    let saddle = p["saddle_energy"].as_f64().unwrap();
+    let latent = p["highest"].as_f64().unwrap();
+    // The A–C saddle of Müller–Brown: E = −40.664844 at (−0.822002, 0.624313)
+    // (Müller & Brown 1979; recomputed, REFERENCES.md P + R).
+    eprintln!("A→C: highest point of the flow's path {latent:.4}, relaxed saddle {saddle:.6}");
+    assert!(
+        ((saddle + 40.664844) / 40.664844).abs() < 0.01,
+        "saddle {saddle}"
+    );
+    assert_eq!(p["relax_converged"], true);
+}

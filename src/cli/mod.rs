@@ -122,6 +122,26 @@ pub enum Command {
         #[arg(long, value_name = "FILE.html")]
         out: PathBuf,
     },
+    /// The path between two states through the flow's latent space, with the energy
+    /// along it; --relax turns it into a minimum-energy path whose highest point
+    /// estimates the barrier.
+    Path {
+        name: String,
+        /// State id to start from (see `tarn states`).
+        #[arg(long)]
+        from: u32,
+        /// State id to end at.
+        #[arg(long)]
+        to: u32,
+        /// Images along the path.
+        #[arg(long, default_value_t = 24)]
+        images: usize,
+        /// Relax the path (climbing-image nudged elastic band).
+        #[arg(long)]
+        relax: bool,
+        #[arg(long)]
+        json: bool,
+    },
     /// A hash of all scientific content (no times, hosts or durations): equal digests
     /// mean equal results.
     Digest { name: String },
@@ -261,6 +281,19 @@ fn dispatch(cli: &Cli) -> Result<u8, Failure> {
             }
             println!("wrote {}", out.display());
             Ok(EXIT_OK)
+        }
+        Command::Path {
+            name,
+            from,
+            to,
+            images,
+            relax,
+            json,
+        } => {
+            let store = open_store(&cli.state, name)?;
+            let p = report::path::latent_path(&store, *from, *to, *images, *relax)
+                .map_err(|e| Failure::input(format!("{e:#}")))?;
+            print_or_json(*json, &p, || report::path::path_text(&p))
         }
         Command::Digest { name } => {
             let store = open_store(&cli.state, name)?;

@@ -6,6 +6,7 @@
 
 pub mod export;
 pub mod html;
+pub mod path;
 pub mod plots;
 
 use serde::{Deserialize, Serialize};

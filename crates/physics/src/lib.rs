@@ -15,6 +15,7 @@ pub mod explore;
 pub mod external;
 pub mod fingerprint;
 pub mod models;
+pub mod path;
 pub mod quench;
 pub mod simd;
 
