@@ -38,6 +38,26 @@ const PLOTS: [&str; 5] = [
     "plot-landscape",
 ];
 
+/// The plots a report of `store` must draw: [`PLOTS`], and the profile when the newest
+/// evaluate task stored one (the shipped flow campaign asks for one).
+fn expected_plots(store: &Store) -> Vec<&'static str> {
+    let mut want = PLOTS.to_vec();
+    if stored_profile(store) {
+        want.push("plot-profile");
+    }
+    want
+}
+
+/// Whether the newest round's evaluate task stored a `profile` array.
+fn stored_profile(store: &Store) -> bool {
+    let last = store.last_round().unwrap().expect("a round");
+    store
+        .round_tasks(last.round)
+        .unwrap()
+        .iter()
+        .any(|t| t.role == Role::Evaluate && t.arrays.contains_key("profile"))
+}
+
 /// Runs the shipped 2-D flow campaign (it has an evaluate stage) to its end and returns
 /// the environment and the campaign's store directory.
 fn flow_campaign() -> (common::Env, PathBuf) {
@@ -80,6 +100,13 @@ fn svgs(text: &str) -> Vec<&str> {
         .collect()
 }
 
+/// The ids of the figures of a page, in order.
+fn figure_ids(html: &str) -> Vec<&str> {
+    html.match_indices("<figure class=\"plot")
+        .filter_map(|(i, _)| html[i..].split("id=\"").nth(1)?.split('"').next())
+        .collect()
+}
+
 /// Number of data-drawing elements (lines, marks, polygons) in an SVG.
 fn drawing_elements(svg: &str) -> usize {
     ["<path", "<circle", "<polyline", "<polygon"]
@@ -103,7 +130,8 @@ fn the_report_of_a_2d_flow_campaign_has_every_section_and_every_plot_is_drawn() 
     element(&page, "aside", "caution");
 
     // Every plot is present, drawn (not a notice), and carries data marks.
-    for id in PLOTS {
+    let plots = expected_plots(&store);
+    for &id in &plots {
         let fig = element(&page, "figure", id);
         assert!(!fig.contains("data-empty"), "{id} is a notice: {fig:.400}");
         let s = svgs(fig);
@@ -112,8 +140,9 @@ fn the_report_of_a_2d_flow_campaign_has_every_section_and_every_plot_is_drawn() 
     }
     assert_eq!(
         svgs(&page).len(),
-        PLOTS.len(),
-        "unexpected extra svg elements"
+        plots.len(),
+        "svg elements besides {plots:?}: figures {:?}",
+        figure_ids(&page)
     );
 
     // Axis labels with units.
@@ -142,7 +171,7 @@ fn the_report_of_a_2d_flow_campaign_has_every_section_and_every_plot_is_drawn() 
     assert_eq!(table.matches("<tr>").count(), states.len() + 2);
     for s in &states {
         assert!(table.contains(&format!("<code>{}</code>", escape(&s.found.task))));
-        assert!(table.contains(&format!("<td>{}</td>", s.found.seed)));
+        assert!(table.contains(&format!("<td><code>{}</code></td>", s.found.seed)));
     }
 
     // The rounds table has one row per round; the campaign finished and says why.
@@ -161,8 +190,20 @@ fn the_report_of_a_2d_flow_campaign_has_every_section_and_every_plot_is_drawn() 
         "{circles} circles in the landscape"
     );
 
-    // The profile section is a labelled placeholder: this campaign stores no profile.
-    assert!(element(&page, "section", "profile").contains("No profile data"));
+    // The profile section draws the stored profile and its reference (two lines), or
+    // is a labelled placeholder when the store holds none.
+    let profile = element(&page, "section", "profile");
+    if stored_profile(&store) {
+        let fig = element(&page, "figure", "plot-profile");
+        assert!(
+            fig.matches("<polyline").count() >= 2,
+            "profile without its reference"
+        );
+        assert!(fig.contains("<polygon"), "profile without its error band");
+        assert!(!profile.contains("No profile data"));
+    } else {
+        assert!(profile.contains("No profile data"));
+    }
 
     // Self-contained: nothing is fetched, nothing runs.
     for banned in ["<script", "<link", "src=", "url(", "@import", "href=\"http"] {
@@ -519,14 +560,16 @@ fn the_report_loads_in_headless_chromium_with_every_plot_and_no_console_error() 
     for id in SECTIONS {
         element(&dom, "section", id);
     }
+    let plots = expected_plots(&Store::open(&dir).expect("reopen store"));
     let all = svgs(&dom);
     assert_eq!(
         all.len(),
-        PLOTS.len(),
-        "the browser's DOM has {} svg elements",
-        all.len()
+        plots.len(),
+        "the browser's DOM has {} svg elements, figures {:?}",
+        all.len(),
+        figure_ids(&dom)
     );
-    for id in PLOTS {
+    for &id in &plots {
         let fig = element(&dom, "figure", id);
         let s = svgs(fig);
         assert_eq!(s.len(), 1, "{id}: {} svg elements in the DOM", s.len());

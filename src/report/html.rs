@@ -13,10 +13,11 @@
 //! reasons, the campaign file) goes through [`escape`].
 //!
 //! # Profile arrays
-//! The 1-D profile section draws the newest evaluate task that stored the arrays
-//! `profile_centers` and `profile_free_energy` (kT, NaN for empty bins), with
-//! `profile_lower`/`profile_upper` (the error band) and `profile_reference` when present.
-//! Without them the section says plainly that the store holds no profile.
+//! The 1-D profile section draws the newest committed evaluate task's `profile` array,
+//! of shape [bins, 3] (bin centre, F in kT with NaN for an empty bin, its standard
+//! error), with `profile_reference` ([bins], kT) when present and the task's
+//! `profile_rms` / `profile_boltzmann_rms` metrics. Without them the section says
+//! plainly that the store holds no profile.
 
 use std::fmt::Write as _;
 use std::path::Path;
@@ -281,19 +282,22 @@ ul.legend { list-style: none; padding: 0; margin: 8px 0 0; display: flex; flex-w
 .ramp-labels { display: flex; justify-content: space-between; max-width: 420px; font-size: 13px; color: var(--muted); }
 .table-wrap { overflow-x: auto; max-height: 640px; overflow-y: auto; border: 1px solid var(--line); border-radius: 6px; }
 table { border-collapse: collapse; width: 100%; font-size: 13.5px; font-variant-numeric: tabular-nums; }
-th, td { padding: 6px 8px; border-bottom: 1px solid var(--line); text-align: right; white-space: nowrap; }
+th, td { padding: 6px 7px; border-bottom: 1px solid var(--line); text-align: right; white-space: nowrap; }
 th { position: sticky; top: 0; background: #f3f1eb; font-weight: 600; font-size: 13px; color: #3b4a50;
   white-space: normal; vertical-align: bottom; }
 th.l, td.l { text-align: left; }
 tbody tr:nth-child(even) { background: #f8f7f2; }
 td.stop { white-space: normal; text-align: left; min-width: 260px; }
 tr.stopped td { background: #eef4f1; }
+table.grouped { width: auto; min-width: 100%; }
 table.grouped th { position: static; }
+table.grouped code { font-size: 12px; }
+.when { color: var(--muted); font-size: 12px; }
 th.group { text-align: center; border-bottom: 1px solid #cfcabd; }
 details summary { cursor: pointer; color: var(--accent); }
 pre.source { background: #f6f4ee; border: 1px solid var(--line); border-radius: 6px; padding: 12px 14px;
   overflow-x: auto; font: 13px/1.45 ui-monospace, "SFMono-Regular", Menlo, Consolas, monospace; }
-code { font: 13px ui-monospace, "SFMono-Regular", Menlo, Consolas, monospace; }
+code { font: 12.5px ui-monospace, "SFMono-Regular", Menlo, Consolas, monospace; }
 footer { color: var(--muted); font-size: 13px; padding: 10px 0 36px; }
 "#;
 
@@ -787,14 +791,24 @@ fn landscape_section(store: &Store, c: &Context) -> anyhow::Result<String> {
     Ok(out)
 }
 
-/// The newest evaluate task's profile arrays, if any round stored them: (round, task id,
-/// names of every `profile*` array, the profile when its layout is the one documented in
-/// the module doc).
-type FoundProfile = (u32, String, Vec<String>, Option<ProfileData>);
+/// A profile found in the store.
+struct FoundProfile {
+    round: u32,
+    task: String,
+    /// Names of every `profile*` array the task stored.
+    names: Vec<String>,
+    /// The profile, when its layout is the one in the module doc.
+    data: Option<ProfileData>,
+    /// RMS difference to the reference (Boltzmann-mean alignment), if the worker
+    /// measured it.
+    rms: Option<f64>,
+    boltzmann_rms: Option<f64>,
+}
 
+/// The newest committed evaluate task's profile arrays, if it stored any.
 fn find_profile(store: &Store, c: &Context) -> anyhow::Result<Option<FoundProfile>> {
-    // Only the newest round with a committed evaluate task is read: evaluations store
-    // the same arrays every round, so an older one holds no profile the newest lacks.
+    // Only the newest round with a committed evaluate task is read: each evaluation
+    // draws its profile afresh from the newest flow, so it is the one to show.
     for r in c.rounds.iter().rev() {
         let tasks = store.round_tasks(r.round)?;
         let Some(t) = tasks
@@ -813,34 +827,71 @@ fn find_profile(store: &Store, c: &Context) -> anyhow::Result<Option<FoundProfil
             return Ok(None);
         }
         let key = keys::task_suffix(t.round, t.stage_index, t.walker);
-        let read = |name: &str| -> anyhow::Result<Option<Vec<f64>>> {
-            Ok(store.array(&key, name)?.map(|a| a.data))
-        };
-        let centers = read("profile_centers")?;
-        let f = read("profile_free_energy")?;
-        let data = match (centers, f) {
-            (Some(centers), Some(free_energy)) if centers.len() == free_energy.len() => {
-                let band = match (read("profile_lower")?, read("profile_upper")?) {
-                    (Some(lo), Some(hi))
-                        if lo.len() == centers.len() && hi.len() == centers.len() =>
-                    {
-                        Some((lo, hi))
-                    }
-                    _ => None,
-                };
-                let reference = read("profile_reference")?.filter(|r| r.len() == centers.len());
+        let data = match store.array(&key, "profile")? {
+            Some(a) if a.shape.len() == 2 && a.shape[1] == 3 && a.shape[0] > 0 => {
+                let n = a.shape[0];
+                let col = |k: usize| (0..n).map(|i| a.data[3 * i + k]).collect::<Vec<f64>>();
+                let (centers, f, err) = (col(0), col(1), col(2));
+                let lower = f.iter().zip(&err).map(|(f, e)| f - e).collect();
+                let upper = f.iter().zip(&err).map(|(f, e)| f + e).collect();
+                let reference = store
+                    .array(&key, "profile_reference")?
+                    .map(|r| r.data)
+                    .filter(|r| r.len() == n);
                 Some(ProfileData {
                     centers,
-                    free_energy,
-                    band,
+                    free_energy: f,
+                    band: Some((lower, upper)),
                     reference,
                 })
             }
             _ => None,
         };
-        return Ok(Some((t.round, t.id.clone(), names, data)));
+        let metric = |name: &str| t.metrics.get(name).copied().flatten();
+        return Ok(Some(FoundProfile {
+            round: t.round,
+            task: t.id.clone(),
+            names,
+            data,
+            rms: metric("profile_rms"),
+            boltzmann_rms: metric("profile_boltzmann_rms"),
+        }));
     }
     Ok(None)
+}
+
+/// A collective variable's description from its campaign-file table, e.g.
+/// `{ cv = "coordinate", index = 0 }` reads "coordinate x[0]".
+fn cv_label(cv: Option<&serde_json::Value>) -> String {
+    let Some(v) = cv else {
+        return "collective variable".into();
+    };
+    if let Some(name) = v.as_str() {
+        return name.to_string();
+    }
+    let name = v
+        .get("cv")
+        .and_then(|n| n.as_str())
+        .unwrap_or("collective variable");
+    if name == "coordinate" {
+        if let Some(i) = v.get("index").and_then(|i| i.as_u64()) {
+            return format!("coordinate x[{i}] (model length unit)");
+        }
+    }
+    let rest: Vec<String> = v
+        .as_object()
+        .map(|o| {
+            o.iter()
+                .filter(|(k, _)| k.as_str() != "cv")
+                .map(|(k, x)| format!("{k} = {x}"))
+                .collect()
+        })
+        .unwrap_or_default();
+    if rest.is_empty() {
+        name.to_string()
+    } else {
+        format!("{name} ({})", rest.join(", "))
+    }
 }
 
 fn profile_section(store: &Store, c: &Context) -> anyhow::Result<String> {
@@ -851,49 +902,85 @@ fn profile_section(store: &Store, c: &Context) -> anyhow::Result<String> {
         .ok()
         .and_then(|k| k.evaluate.as_ref())
         .and_then(|s| s.params.get("profile"))
-        .and_then(|p| p.get("cv"))
-        .and_then(|v| v.as_str())
-        .map(str::to_string);
-    match find_profile(store, c)? {
-        None => {
-            out.push_str("<p class=\"placeholder\" data-empty=\"no profile in the store\"><strong>No profile data in this campaign's store.</strong> None of its evaluations recorded a 1-D free-energy profile, so none is drawn here (placeholder: this section shows the profile with its error band and reference once an evaluate stage stores one).</p>\n");
-        }
-        Some((round, task, names, None)) => {
-            let _ = writeln!(
-                out,
-                "<p class=\"placeholder\" data-empty=\"profile layout not read\"><strong>Task {} (round {round}) stored profile arrays ({}), but not in the layout this report draws</strong> (<code>profile_centers</code> and <code>profile_free_energy</code> of equal length), so nothing is drawn.</p>",
-                escape(&task),
-                escape(&names.join(", "))
-            );
-        }
-        Some((round, task, _, Some(data))) => {
-            let x = match &cv {
-                Some(name) => format!("collective variable {name}"),
-                None => "collective variable".into(),
-            };
-            let svg = plots::profile(
-                &data,
-                Axes {
-                    x: &x,
-                    y: "free energy F(s) [kT]",
-                },
-            )?;
-            out.push_str("<p class=\"lead\">The reweighted free-energy profile along a collective variable, with its error band, beside the reference where the campaign provides one.</p>\n");
-            let reference = if data.reference.is_some() {
-                " The second line is the reference profile."
+        .and_then(|p| p.get("cv"));
+    let found = find_profile(store, c)?;
+    let Some(found) = found else {
+        out.push_str("<p class=\"placeholder\" data-empty=\"no profile in the store\"><strong>No profile data in this campaign's store.</strong> None of its evaluations recorded a 1-D free-energy profile, so none is drawn (an evaluate stage records one when its parameters ask for a <code>profile</code>).</p>\n</section>\n");
+        return Ok(out);
+    };
+    let Some(data) = &found.data else {
+        let _ = writeln!(
+            out,
+            "<p class=\"placeholder\" data-empty=\"profile layout not read\"><strong>Task {} (round {}) stored profile arrays ({}), but not in the layout this report draws</strong> (<code>profile</code> of shape [bins, 3]: centre, F, error), so nothing is drawn.</p>\n</section>",
+            escape(&found.task),
+            found.round,
+            escape(&found.names.join(", "))
+        );
+        return Ok(out);
+    };
+    let x = cv_label(cv);
+    let svg = plots::profile(
+        data,
+        Axes {
+            x: &x,
+            y: "free energy F(s) [kT]",
+        },
+    )?;
+    out.push_str("<p class=\"lead\">The reweighted free-energy profile along a collective variable from the newest evaluation, with a band of one standard error (bootstrap), beside the exact reference where the campaign has one. Each curve has its lowest bin at 0; bins the flow's samples did not reach are left out.</p>\n");
+    out.push_str("<div class=\"pair\">\n");
+    let reference = if data.reference.is_some() {
+        format!(
+            " {} line: the exact profile (quadrature).",
+            if plots::state_colour(1) == plots::ACCENT {
+                "Second"
             } else {
-                " No reference profile was stored."
-            };
-            out.push_str(&figure(
-                "plot-profile",
-                &svg,
-                "free-energy profile",
-                &escape(&format!("Profile from task {task} (round {round}), F in kT; shaded: error band.{reference}")),
-                None,
-            ));
-        }
+                "Ochre"
+            }
+        )
+    } else {
+        " No reference profile was stored.".into()
+    };
+    out.push_str(&figure(
+        "plot-profile",
+        &svg,
+        "free-energy profile",
+        &escape(&format!(
+            "Teal: the estimate from task {} (round {}), shaded ±1 standard error.{reference}",
+            found.task, found.round
+        )),
+        None,
+    ));
+    out.push_str("<div>\n");
+    if let (Some(rms), Some(brms)) = (found.rms, found.boltzmann_rms) {
+        let _ = writeln!(
+            out,
+            "<p>Against the reference, over bins within 10 kT of its lowest, after aligning the estimate by its Boltzmann-weighted mean shift: RMS difference <strong>{rms:.3} kT</strong>, Boltzmann-weighted RMS <strong>{brms:.3} kT</strong>.</p>"
+        );
     }
-    out.push_str("</section>\n");
+    let history: Vec<(u32, f64)> = c
+        .rounds
+        .iter()
+        .filter_map(|r| {
+            r.stages
+                .iter()
+                .find_map(|s| s.metrics.get("profile_boltzmann_rms").copied())
+                .map(|v| (r.round, v))
+        })
+        .collect();
+    if history.len() > 1 {
+        let cells: Vec<String> = history
+            .iter()
+            .rev()
+            .take(12)
+            .map(|(r, v)| format!("<tr><td>{r}</td><td>{v:.3}</td></tr>"))
+            .collect();
+        let _ = writeln!(
+            out,
+            "<div class=\"table-wrap\"><table id=\"profile-history\"><thead><tr><th>round</th><th>Boltzmann-weighted RMS to the reference [kT]</th></tr></thead><tbody>{}</tbody></table></div>",
+            cells.join("")
+        );
+    }
+    out.push_str("</div>\n</div>\n</section>\n");
     Ok(out)
 }
 
@@ -908,7 +995,7 @@ fn catalogue_section(c: &Context) -> String {
     let show_min = c.states.iter().all(|s| s.representative.len() <= 3);
     let _ = write!(
         out,
-        "<div class=\"table-wrap\"><table id=\"catalogue-table\" class=\"grouped\">\n<thead><tr><th class=\"l\" rowspan=\"2\">state</th><th rowspan=\"2\">energy [{}]</th><th rowspan=\"2\">F ± error [kT]</th><th rowspan=\"2\">estimated in round</th>{}<th class=\"group\" colspan=\"6\">first sighting</th><th rowspan=\"2\">cost to find [energy evaluations]</th><th rowspan=\"2\">sightings</th></tr>\n<tr><th>round</th><th class=\"l\">stage</th><th class=\"l\">task</th><th>walker</th><th>seed</th><th>sample</th></tr></thead>\n<tbody>\n",
+        "<div class=\"table-wrap\"><table id=\"catalogue-table\" class=\"grouped\">\n<thead><tr><th class=\"l\" rowspan=\"2\">state</th><th rowspan=\"2\">energy [{}]</th><th rowspan=\"2\">F ± error [kT]</th>{}<th class=\"group\" colspan=\"6\">first sighting</th><th rowspan=\"2\">cost to find [energy evaluations]</th><th rowspan=\"2\">sightings</th></tr>\n<tr><th>round</th><th class=\"l\">stage</th><th class=\"l\">task</th><th>walker</th><th>seed</th><th>sample</th></tr></thead>\n<tbody>\n",
         escape(unit),
         if show_min {
             "<th class=\"l\" rowspan=\"2\">minimum</th>"
@@ -918,18 +1005,20 @@ fn catalogue_section(c: &Context) -> String {
     );
     for (i, s) in c.states.iter().enumerate() {
         let minimum = if show_min {
-            let coords: Vec<String> = s.representative.iter().map(|v| format!("{v:.4}")).collect();
+            let coords: Vec<String> = s.representative.iter().map(|v| format!("{v:.3}")).collect();
             format!("<td class=\"l\">({})</td>", coords.join(", "))
         } else {
             String::new()
         };
-        let est_round = s
-            .estimates
-            .last()
-            .map_or("–".to_string(), |e| e.round.to_string());
+        let est_round = s.estimates.last().map_or(String::new(), |e| {
+            format!(
+                " <span class=\"when\" title=\"estimated in round {0}\">r{0}</span>",
+                e.round
+            )
+        });
         let _ = writeln!(
             out,
-            "<tr><td class=\"l\"><span class=\"swatch\" style=\"background:{}\"></span>{}</td><td>{:.6}</td><td>{}</td><td>{}</td>{minimum}<td>{}</td><td class=\"l\">{}</td><td class=\"l\"><code>{}</code></td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+            "<tr><td class=\"l\"><span class=\"swatch\" style=\"background:{}\"></span>{}</td><td>{:.6}</td><td>{}{}</td>{minimum}<td>{}</td><td class=\"l\">{}</td><td class=\"l\"><code>{}</code></td><td>{}</td><td><code>{}</code></td><td>{}</td><td>{}</td><td>{}</td></tr>",
             plots::css(plots::state_colour(i)),
             s.id,
             s.energy,
