@@ -223,7 +223,7 @@ fn escape_neutralises_markup_from_files() {
     assert_eq!(escape("plain — ± ü"), "plain — ± ü");
 }
 
-/// A synthetic store: `n_rounds` rounds of a 2-D Müller–Brown campaign without an
+/// A synthetic store (states only when `n_rounds` is at least 1): `n_rounds` rounds of a 2-D Müller–Brown campaign without an
 /// evaluate stage in its file but with free-energy estimates, `n_samples` explore
 /// samples per round from two walkers, and a stop reason that carries markup.
 fn synthetic_store(dir: &Path, n_rounds: u32, n_samples: usize) -> Store {
@@ -324,6 +324,9 @@ fn synthetic_store(dir: &Path, n_rounds: u32, n_samples: usize) -> Store {
         }
         store.apply(b).expect("apply");
     }
+    if n_rounds == 0 {
+        return store;
+    }
     let mut b = Batch::default();
     for (k, &(x, y, e)) in minima.iter().enumerate() {
         let found_round = k as u32 + 1;
@@ -375,6 +378,32 @@ fn a_campaign_without_an_evaluate_stage_says_so_and_escapes_stored_text() {
         assert!(!fig.contains("data-empty"), "{id} is a notice");
         assert!(drawing_elements(fig) > 0, "{id} draws nothing");
     }
+}
+
+#[test]
+fn a_campaign_with_no_round_yet_renders_notices_not_errors() {
+    // What the engine's first refresh (or `tarn report` right after `tarn run` started)
+    // sees: a store with its campaign file and nothing else.
+    let dir = tempfile::tempdir().unwrap();
+    let store = synthetic_store(dir.path(), 0, 0);
+    let page = html::render(&store).expect("render");
+    for id in SECTIONS {
+        element(&page, "section", id);
+    }
+    for (id, why) in [
+        ("plot-discovery-round", "no round completed yet"),
+        ("plot-free-energy", "no free-energy estimate yet"),
+        ("plot-ess", "no evaluation stage"),
+    ] {
+        let fig = element(&page, "figure", id);
+        assert!(
+            fig.contains(&format!("data-empty=\"{why}\"")),
+            "{id}: {fig:.300}"
+        );
+    }
+    assert!(element(&page, "p", "stop-reason").contains("Not finished"));
+    // A campaign that has not finished reloads itself, so an open page follows it.
+    assert!(page.contains("http-equiv=\"refresh\""));
 }
 
 #[test]

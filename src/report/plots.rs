@@ -719,18 +719,16 @@ pub fn landscape(l: &Landscape, axes: Axes) -> Result<String, PlotError> {
                 .map(|&(x, y, r)| Circle::new((x, y), 2, round_colour(t(r)).mix(0.7).filled())),
         )?;
         for &(id, x, y) in l.minima {
-            chart.draw_series(std::iter::once(Circle::new((x, y), 7, INK.stroke_width(2))))?;
-            chart.draw_series(std::iter::once(Text::new(
-                format!("state {id}"),
-                (x, y),
-                (FONT, 15)
-                    .into_font()
-                    .color(&INK)
-                    .pos(plotters::style::text_anchor::Pos::new(
-                        plotters::style::text_anchor::HPos::Left,
-                        plotters::style::text_anchor::VPos::Bottom,
-                    )),
-            )))?;
+            // The label sits on a paper-coloured plate up and right of the minimum, so
+            // that it reads over a dense cloud of samples.
+            let label = format!("state {id}");
+            let width = 12 + (label.len() as i32) * 8;
+            let mark = EmptyElement::at((x, y))
+                + Circle::new((0, 0), 7, INK.stroke_width(2))
+                + Rectangle::new([(9, -28), (9 + width, -8)], PAPER.mix(0.88).filled())
+                + Rectangle::new([(9, -28), (9 + width, -8)], MUTED.mix(0.5).stroke_width(1))
+                + Text::new(label, (14, -25), (FONT, 17).into_font().color(&INK));
+            chart.draw_series(std::iter::once(mark))?;
         }
         Ok(())
     })
