@@ -110,6 +110,42 @@ pub fn round_samples(
     Ok((Array::matrix(n, dim, xs), Array::vector(es), origins))
 }
 
+/// For each of the round's samples: the temperature factor its stage declared
+/// (`params.temperature_factor`, 1 when absent) and, when every explore task of the
+/// round handed back `log_weights`, those log weights.
+fn sample_weights(
+    store: &Store,
+    campaign: &Campaign,
+    round: u32,
+    origins: &[Origin],
+) -> Result<(Array, Option<Array>), StoreError> {
+    let stages = campaign.stages();
+    let tau_of = |idx: u16| {
+        stages
+            .get(idx as usize)
+            .and_then(|s| s.params.get("temperature_factor"))
+            .and_then(|v| v.as_f64())
+            .unwrap_or(1.0)
+    };
+    let tau: Vec<f64> = origins.iter().map(|o| tau_of(o.stage_index)).collect();
+    let mut log_w = Vec::with_capacity(origins.len());
+    let mut complete = true;
+    for t in store.round_tasks(round)? {
+        if t.role != Role::Explore || t.status != TaskStatus::Done {
+            continue;
+        }
+        match store.array(
+            &keys::task_suffix(t.round, t.stage_index, t.walker),
+            "log_weights",
+        )? {
+            Some(a) => log_w.extend_from_slice(&a.data),
+            None => complete = false,
+        }
+    }
+    let log_w = (complete && log_w.len() == origins.len()).then(|| Array::vector(log_w));
+    Ok((Array::vector(tau), log_w))
+}
+
 /// The catalogue's minima and energies in id order.
 pub fn catalogue(store: &Store, dim: usize) -> Result<(Array, Array), StoreError> {
     let states = store.states()?;
@@ -167,6 +203,13 @@ pub fn prepare(
             inputs.insert("energies".into(), e);
             inputs.insert("catalogue".into(), cx);
             inputs.insert("catalogue_energies".into(), ce);
+            if stage.role == Role::Evaluate {
+                let (tau, log_w) = sample_weights(store, campaign, task.round, &origins)?;
+                inputs.insert("sample_temperature_factor".into(), tau);
+                if let Some(lw) = log_w {
+                    inputs.insert("sample_log_weight".into(), lw);
+                }
+            }
             provenance = origins;
             model = if stage.role == Role::Evaluate {
                 model_up_to(store, task.round)?

@@ -70,6 +70,16 @@ pub const BUILTIN_KINDS: &[(Role, &str, &str)] = &[
         "reweight",
         "reweight flow samples: ESS, free energies with error bars",
     ),
+    (
+        Role::Evaluate,
+        "mbar",
+        "combine walkers at several temperatures by MBAR, reweight to kT",
+    ),
+    (
+        Role::Evaluate,
+        "reweight-bias",
+        "reweight biased samples (metadynamics) by their log weights",
+    ),
 ];
 
 // ---------------------------------------------------------------------------------

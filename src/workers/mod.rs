@@ -7,6 +7,7 @@
 
 pub mod dedup;
 pub mod evaluate;
+pub mod evaluate_samples;
 pub mod explore;
 pub mod external;
 pub mod flow;
@@ -93,6 +94,8 @@ pub fn main(kind: &str) -> ExitCode {
         "quench" => dedup::quench(&task),
         "realnvp" => flow::retrain(&task),
         "reweight" => evaluate::reweight(&task),
+        "mbar" => evaluate_samples::mbar(&task),
+        "reweight-bias" => evaluate_samples::reweight_bias(&task),
         other => Err(format!(
             "'{other}' is not a built-in worker kind this build provides"
         )),

@@ -1,0 +1,153 @@
+//! Evaluate kinds that reweight the round's own explore samples instead of drawing from
+//! a flow: `mbar` for walkers at several temperatures (Shirts & Chodera, J. Chem. Phys.
+//! 129, 124105, 2008), and `reweight-bias` for biased explorers that hand back log
+//! weights (well-tempered metadynamics, reweighted per Tiwary & Parrinello, J. Phys.
+//! Chem. B 119, 736, 2015). Samples are assigned to states by quench, as in `reweight`.
+//!
+//! Both treat the round's samples as independent. Trajectory frames are correlated, so
+//! the bootstrap error bars are lower bounds unless the explorers save frames at least a
+//! correlation time apart (`save_stride`); for `mbar` the bootstrap also holds the
+//! states' free energies f_k fixed.
+
+use serde::Deserialize;
+
+use super::{rng, Output, Task};
+use crate::physics::fingerprint::{assign, Fingerprint, StateTolerance};
+use crate::physics::quench::{quench_batch, FireParams, QuenchStatus};
+use crate::protocol::Array;
+use crate::stats::{kish_ess, state_free_energies, BootstrapOptions, Mbar, MbarOptions};
+
+/// Parameters shared by the sample-reweighting kinds.
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+struct SampleParams {
+    bootstrap: usize,
+    force_tolerance: f64,
+    max_steps: u64,
+    energy_tolerance: f64,
+    fingerprint_tolerance: f64,
+}
+
+impl Default for SampleParams {
+    fn default() -> Self {
+        let tol = StateTolerance::default();
+        let fire = FireParams::default();
+        SampleParams {
+            bootstrap: 400,
+            force_tolerance: fire.force_tolerance,
+            max_steps: fire.max_steps,
+            energy_tolerance: tol.energy,
+            fingerprint_tolerance: tol.fingerprint,
+        }
+    }
+}
+
+/// The `mbar` kind: every explore stage is a thermodynamic state at its declared
+/// temperature factor; MBAR combines them and reweights to the campaign's kT.
+pub fn mbar(task: &Task) -> Result<Output, String> {
+    let p: SampleParams = task.params()?;
+    let energies = task.input("energies")?;
+    let tau = task.input("sample_temperature_factor")?;
+    let kt = task.file.kt;
+    let mut levels: Vec<f64> = tau.data.clone();
+    levels.sort_by(f64::total_cmp);
+    levels.dedup();
+    let n = energies.data.len();
+    let n_k: Vec<usize> = levels
+        .iter()
+        .map(|l| tau.data.iter().filter(|t| *t == l).count())
+        .collect();
+    let mut u_kn = Vec::with_capacity(levels.len() * n);
+    for l in &levels {
+        u_kn.extend(energies.data.iter().map(|e| e / (kt * l)));
+    }
+    let m = Mbar::solve(&u_kn, &n_k, &MbarOptions::default()).map_err(|e| format!("MBAR: {e}"))?;
+    let target: Vec<f64> = energies.data.iter().map(|e| e / kt).collect();
+    let log_w = m
+        .target_log_weights(&target)
+        .map_err(|e| format!("MBAR: {e}"))?;
+    let mut out = estimate(task, &p, &log_w)?;
+    out.metrics
+        .insert("mbar_states".into(), Some(levels.len() as f64));
+    out.metrics
+        .insert("mbar_iterations".into(), Some(m.iterations() as f64));
+    Ok(out)
+}
+
+/// The `reweight-bias` kind: the explore workers' own log weights.
+pub fn reweight_bias(task: &Task) -> Result<Output, String> {
+    let p: SampleParams = task.params()?;
+    if !task.file.inputs.contains_key("sample_log_weight") {
+        return Err("the round's explore tasks handed back no log_weights (every explore stage must be a biased or flow sampler, e.g. metadynamics or generate)".into());
+    }
+    let log_w = task.input("sample_log_weight")?;
+    estimate(task, &p, &log_w.data)
+}
+
+/// Quench-assigns the round's samples and estimates state free energies with `log_w`.
+fn estimate(task: &Task, p: &SampleParams, log_w: &[f64]) -> Result<Output, String> {
+    let (spec, model) = task.model()?;
+    let dim = model.dim();
+    let samples = task.input("samples")?;
+    let catalogue = task.input("catalogue")?;
+    let cat_e = task.input("catalogue_energies")?;
+    let k = catalogue.rows();
+    let fire = FireParams {
+        force_tolerance: p.force_tolerance,
+        max_steps: p.max_steps,
+        ..FireParams::default()
+    };
+    let q =
+        quench_batch(model.as_ref(), &samples.data, &fire).map_err(|e| format!("quench: {e}"))?;
+    let fp = Fingerprint::for_system(&spec);
+    let known: Vec<(f64, Vec<f64>)> = (0..k)
+        .map(|i| {
+            (
+                cat_e.data[i],
+                fp.compute(&catalogue.data[i * dim..(i + 1) * dim]),
+            )
+        })
+        .collect();
+    let tol = StateTolerance {
+        energy: p.energy_tolerance,
+        fingerprint: p.fingerprint_tolerance,
+    };
+    let labels: Vec<Option<u32>> = (0..samples.rows())
+        .map(|j| {
+            (q.status[j] == QuenchStatus::Converged)
+                .then(|| {
+                    assign(q.energies[j], &fp.compute(q.minimum(j)), &known, &tol).map(|s| s as u32)
+                })
+                .flatten()
+        })
+        .collect();
+    let ids: Vec<u32> = (0..k as u32).collect();
+    let opts = BootstrapOptions {
+        n_replicates: p.bootstrap,
+        ..BootstrapOptions::default()
+    };
+    let est = state_free_energies(log_w, &labels, &ids, &opts, &mut rng(task))
+        .map_err(|e| format!("free energies: {e}"))?;
+    let mut f = vec![f64::NAN; k];
+    let mut ferr = vec![f64::NAN; k];
+    for s in &est.states {
+        if (s.state as usize) < k {
+            f[s.state as usize] = s.free_energy.unwrap_or(f64::NAN);
+            ferr[s.state as usize] = s.free_energy_err.unwrap_or(f64::NAN);
+        }
+    }
+    let mut out = Output {
+        energy_evals: q.n_evals,
+        ..Default::default()
+    };
+    out.arrays.insert("free_energy".into(), Array::vector(f));
+    out.arrays
+        .insert("free_energy_err".into(), Array::vector(ferr));
+    let ess = kish_ess(log_w).map_err(|e| format!("ESS: {e}"))?;
+    out.metrics.insert("ess".into(), Some(ess));
+    out.metrics
+        .insert("ess_fraction".into(), Some(ess / log_w.len().max(1) as f64));
+    out.metrics
+        .insert("unassigned_weight".into(), Some(est.unassigned_population));
+    Ok(out)
+}
