@@ -240,7 +240,8 @@ fn synthetic_store(dir: &Path, n_rounds: u32, n_samples: usize) -> Store {
         index: 0,
         hash: "ab".repeat(32),
         text: text.into(),
-        path: "synthetic.toml".into(),
+        // Markup in stored text: the page must show it, escaped.
+        path: "syn<script>x</script>thetic.toml".into(),
         accepted_unix: 0.0,
     };
     let store = Store::create(dir, &meta, &version).expect("create");
@@ -337,7 +338,11 @@ fn synthetic_store(dir: &Path, n_rounds: u32, n_samples: usize) -> Store {
             representative: vec![x, y],
             found: Sighting {
                 round: found_round,
-                stage: "hot".into(),
+                stage: if k == 2 {
+                    "hot<img src=x>".into()
+                } else {
+                    "hot".into()
+                },
                 task: format!("r{found_round:04}.hot.w000"),
                 walker: 0,
                 seed: u64::from(found_round * 10),
@@ -367,6 +372,9 @@ fn a_campaign_without_an_evaluate_stage_says_so_and_escapes_stored_text() {
     // The stop reason came from the store with markup in it; it is shown, escaped.
     assert!(!page.contains("<script"));
     assert!(page.contains("&lt;script&gt;alert(1)&lt;/script&gt; reached"));
+    assert!(page.contains("syn&lt;script&gt;x&lt;/script&gt;thetic.toml"));
+    assert!(!page.contains("<img"));
+    assert!(element(&page, "table", "catalogue-table").contains("hot&lt;img src=x&gt;"));
     // The other plots are drawn.
     for id in [
         "plot-discovery-round",

@@ -331,9 +331,13 @@ fn header(c: &Context) -> String {
         ),
     };
     let hash = &c.version.hash;
-    let short = &hash[..hash.len().min(16)];
+    let short: String = hash.chars().take(16).collect();
     let version_note = if c.n_versions > 1 {
-        format!(" (version {} of {})", c.version.index + 1, c.n_versions)
+        format!(
+            " (version {} of {})",
+            c.version.index.saturating_add(1),
+            c.n_versions
+        )
     } else {
         String::new()
     };
@@ -345,7 +349,7 @@ fn header(c: &Context) -> String {
             "campaign file",
             format!(
                 "<code title=\"{h}\">{}</code>{}<br><span title=\"{p}\">{p}</span>",
-                escape(short),
+                escape(&short),
                 escape(&version_note),
                 h = escape(hash),
                 p = escape(&c.version.path)
@@ -643,7 +647,7 @@ fn landscape_samples(
             let Some(a) = store.array(&key, "samples")? else {
                 continue;
             };
-            if a.shape.len() != 2 || a.shape[1] != 2 {
+            if a.shape.len() != 2 || a.shape[1] != 2 || a.data.len() != 2 * a.rows() {
                 continue;
             }
             for i in plots::thin(a.rows(), per_task) {
@@ -828,7 +832,12 @@ fn find_profile(store: &Store, c: &Context) -> anyhow::Result<Option<FoundProfil
         }
         let key = keys::task_suffix(t.round, t.stage_index, t.walker);
         let data = match store.array(&key, "profile")? {
-            Some(a) if a.shape.len() == 2 && a.shape[1] == 3 && a.shape[0] > 0 => {
+            Some(a)
+                if a.shape.len() == 2
+                    && a.shape[1] == 3
+                    && a.shape[0] > 0
+                    && a.data.len() == 3 * a.shape[0] =>
+            {
                 let n = a.shape[0];
                 let col = |k: usize| (0..n).map(|i| a.data[3 * i + k]).collect::<Vec<f64>>();
                 let (centers, f, err) = (col(0), col(1), col(2));
