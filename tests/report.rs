@@ -227,7 +227,18 @@ fn escape_neutralises_markup_from_files() {
 /// evaluate stage in its file but with free-energy estimates, `n_samples` explore
 /// samples per round from two walkers, and a stop reason that carries markup.
 fn synthetic_store(dir: &Path, n_rounds: u32, n_samples: usize) -> Store {
-    let text = "name = \"synthetic\"\nseed = 3\nkT = 10.0\n[system]\nmodel = \"muller-brown\"\n[start]\npoints = [[-0.558, 1.442]]\n[[explore]]\nname = \"hot\"\nkind = \"metropolis\"\nwalkers = 2\n[dedup]\nkind = \"quench\"\n[stop]\nmax_rounds = 2000\n";
+    synthetic_store_with(dir, n_rounds, n_samples, false)
+}
+
+/// [`synthetic_store`], with (`evaluate`) an evaluate stage that records an ESS fraction
+/// of 0.1 + 0.05 per round (capped at 0.9) and an ESS floor of 0.05 in the stop rules.
+fn synthetic_store_with(dir: &Path, n_rounds: u32, n_samples: usize, evaluate: bool) -> Store {
+    let mut text = String::from("name = \"synthetic\"\nseed = 3\nkT = 10.0\n[system]\nmodel = \"muller-brown\"\n[start]\npoints = [[-0.558, 1.442]]\n[[explore]]\nname = \"hot\"\nkind = \"metropolis\"\nwalkers = 2\n[dedup]\nkind = \"quench\"\n");
+    if evaluate {
+        text.push_str("[retrain]\nkind = \"realnvp\"\n[evaluate]\nkind = \"reweight\"\n[stop]\nmax_rounds = 2000\nmin_ess_fraction = 0.05\n");
+    } else {
+        text.push_str("[stop]\nmax_rounds = 2000\n");
+    }
     let meta = Meta {
         v: SCHEMA_VERSION,
         campaign: "synthetic".into(),
@@ -239,7 +250,7 @@ fn synthetic_store(dir: &Path, n_rounds: u32, n_samples: usize) -> Store {
         v: SCHEMA_VERSION,
         index: 0,
         hash: "ab".repeat(32),
-        text: text.into(),
+        text,
         // Markup in stored text: the page must show it, escaped.
         path: "syn<script>x</script>thetic.toml".into(),
         accepted_unix: 0.0,
@@ -297,18 +308,30 @@ fn synthetic_store(dir: &Path, n_rounds: u32, n_samples: usize) -> Store {
             rule: "max_rounds".into(),
             reason: "<script>alert(1)</script> reached".into(),
         });
+        let mut stages = vec![StageTotals {
+            name: "hot".into(),
+            tasks: 2,
+            samples: 2 * n_samples as u64,
+            energy_evals: 2000,
+            ..StageTotals::default()
+        }];
+        if evaluate {
+            stages.push(StageTotals {
+                name: "evaluate".into(),
+                tasks: 1,
+                metrics: BTreeMap::from([(
+                    "ess_fraction".to_string(),
+                    (0.1 + 0.05 * f64::from(r)).min(0.9),
+                )]),
+                ..StageTotals::default()
+            });
+        }
         // Built from JSON so that fields the store gains later with defaults need no
         // change here.
         let round: RoundRecord = serde_json::from_value(serde_json::json!({
             "v": SCHEMA_VERSION,
             "round": r,
-            "stages": [StageTotals {
-                name: "hot".into(),
-                tasks: 2,
-                samples: 2 * n_samples as u64,
-                energy_evals: 2000,
-                ..StageTotals::default()
-            }],
+            "stages": stages,
             "new_states": u32::from(r <= 3),
             "states_total": r.min(3),
             "energy_evals": 2000,
@@ -386,6 +409,27 @@ fn a_campaign_without_an_evaluate_stage_says_so_and_escapes_stored_text() {
         assert!(!fig.contains("data-empty"), "{id} is a notice");
         assert!(drawing_elements(fig) > 0, "{id} draws nothing");
     }
+}
+
+#[test]
+fn the_ess_plot_draws_every_round_and_the_campaign_s_ess_floor() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = synthetic_store_with(dir.path(), 8, 50, true);
+    let page = html::render(&store).expect("render");
+    let fig = element(&page, "figure", "plot-ess");
+    assert!(!fig.contains("data-empty"), "{fig:.300}");
+    // One mark per round with an ESS fraction, and the floor in the caption.
+    assert_eq!(fig.matches("<circle").count(), 8);
+    assert!(fig.contains("ESS floor, 0.05"), "{fig:.2000}");
+    // The floor is a dashed line across the chart: many short strokes besides the
+    // series' own line.
+    assert!(
+        fig.matches("<polyline").count() > 10,
+        "no dashed floor line"
+    );
+    // The rounds table shows each round's fraction.
+    let table = element(&page, "table", "rounds-table");
+    assert!(table.contains("<td>0.150</td>") && table.contains("<td>0.500</td>"));
 }
 
 #[test]

@@ -583,6 +583,11 @@ fn ess_section(c: &Context) -> anyhow::Result<String> {
         Err(_) => true,
     };
     let points = ess_points(c);
+    let floor = c
+        .campaign
+        .as_ref()
+        .ok()
+        .and_then(|k| k.stop.min_ess_fraction);
     let (svg, empty) = if !has_stage {
         (
             plots::notice(plots::SMALL, axes, "no evaluation stage in this campaign")?,
@@ -590,18 +595,22 @@ fn ess_section(c: &Context) -> anyhow::Result<String> {
         )
     } else if points.is_empty() {
         (
-            plots::ess_fraction(&points, axes)?,
+            plots::ess_fraction(&points, floor, axes)?,
             Some("no ESS fraction recorded yet"),
         )
     } else {
-        (plots::ess_fraction(&points, axes)?, None)
+        (plots::ess_fraction(&points, floor, axes)?, None)
     };
     let mut out = String::from("<section id=\"ess\">\n<h2>Reweighting quality</h2>\n");
     out.push_str("<p class=\"lead\">The Kish effective sample size of each evaluation as a fraction of the samples drawn from the flow. Importance weights correct the flow's samples only where the flow puts probability; a free energy from a handful of effective samples is not an estimate, whatever its error bar says, and states the flow never visits get no weight at all.</p>\n");
     let caption = match points.iter().map(|p| p.1).reduce(f64::min) {
         Some(min) => format!(
-            "ESS fraction by round (lowest {}; below 0.02 the axis is logarithmic).",
-            plots::compact(min)
+            "ESS fraction by round (lowest {}; below 0.02 the axis is logarithmic).{}",
+            plots::compact(min),
+            floor.map_or(String::new(), |f| format!(
+                " Dashed: the campaign's ESS floor, {} (stop rule min_ess_fraction).",
+                plots::compact(f)
+            ))
         ),
         None => "ESS fraction by round.".into(),
     };

@@ -444,9 +444,14 @@ pub fn free_energies(tracks: &[StateTrack], axes: Axes) -> Result<String, PlotEr
     })
 }
 
-/// The ESS fraction by round. Fractions span decades when a flow is poor, so below 0.02
-/// the axis is logarithmic (ticks still read as fractions).
-pub fn ess_fraction(points: &[(u32, f64)], axes: Axes) -> Result<String, PlotError> {
+/// The ESS fraction by round, with the campaign's ESS floor (a stop rule) as a dashed
+/// line when it has one. Fractions span decades when a flow is poor, so below 0.02 the
+/// axis is logarithmic (ticks still read as fractions).
+pub fn ess_fraction(
+    points: &[(u32, f64)],
+    floor: Option<f64>,
+    axes: Axes,
+) -> Result<String, PlotError> {
     let pts: Vec<(f64, f64)> = points
         .iter()
         .filter(|p| p.1.is_finite() && p.1 > 0.0)
@@ -456,7 +461,8 @@ pub fn ess_fraction(points: &[(u32, f64)], axes: Axes) -> Result<String, PlotErr
         return notice(SMALL, axes, "no ESS fraction recorded yet");
     }
     let (x0, x1) = bounds(pts.iter().map(|p| p.0));
-    let (lo, _) = bounds(pts.iter().map(|p| p.1));
+    let floor = floor.filter(|f| f.is_finite() && *f > 0.0 && *f <= 1.0);
+    let (lo, _) = bounds(pts.iter().map(|p| p.1).chain(floor));
     let log = lo < 0.02;
     let map = |v: f64| if log { v.log10() } else { v };
     let y_range = if log {
@@ -483,6 +489,15 @@ pub fn ess_fraction(points: &[(u32, f64)], axes: Axes) -> Result<String, PlotErr
             keep.iter()
                 .map(|&i| Circle::new((pts[i].0, map(pts[i].1)), 3, ACCENT.filled())),
         )?;
+        if let Some(f) = floor {
+            let (a, b) = (chart.x_range().start, chart.x_range().end);
+            chart.draw_series(DashedLineSeries::new(
+                [(a, map(f)), (b, map(f))],
+                6,
+                4,
+                state_colour(4).stroke_width(2),
+            ))?;
+        }
         Ok(())
     })
 }
