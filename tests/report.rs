@@ -227,13 +227,23 @@ fn escape_neutralises_markup_from_files() {
 /// evaluate stage in its file but with free-energy estimates, `n_samples` explore
 /// samples per round from two walkers, and a stop reason that carries markup.
 fn synthetic_store(dir: &Path, n_rounds: u32, n_samples: usize) -> Store {
-    synthetic_store_with(dir, n_rounds, n_samples, false)
+    synthetic_store_with(dir, n_rounds, n_samples, false, MULLER_BROWN)
 }
+
+/// The `[system]` table of the synthetic campaigns.
+const MULLER_BROWN: &str = "model = \"muller-brown\"";
 
 /// [`synthetic_store`], with (`evaluate`) an evaluate stage that records an ESS fraction
 /// of 0.1 + 0.05 per round (capped at 0.9) and an ESS floor of 0.05 in the stop rules.
-fn synthetic_store_with(dir: &Path, n_rounds: u32, n_samples: usize, evaluate: bool) -> Store {
-    let mut text = String::from("name = \"synthetic\"\nseed = 3\nkT = 10.0\n[system]\nmodel = \"muller-brown\"\n[start]\npoints = [[-0.558, 1.442]]\n[[explore]]\nname = \"hot\"\nkind = \"metropolis\"\nwalkers = 2\n[dedup]\nkind = \"quench\"\n");
+fn synthetic_store_with(
+    dir: &Path,
+    n_rounds: u32,
+    n_samples: usize,
+    evaluate: bool,
+    system: &str,
+) -> Store {
+    let mut text = format!("name = \"synthetic\"\nseed = 3\nkT = 10.0\n[system]\n{system}\n[start]\npoints = [[-0.558, 1.442]]\n[[explore]]\nname = \"hot\"\nkind = \"metropolis\"\nwalkers = 2\n[dedup]\nkind = \"quench\"\n"
+    );
     if evaluate {
         text.push_str("[retrain]\nkind = \"realnvp\"\n[evaluate]\nkind = \"reweight\"\n[stop]\nmax_rounds = 2000\nmin_ess_fraction = 0.05\n");
     } else {
@@ -414,7 +424,7 @@ fn a_campaign_without_an_evaluate_stage_says_so_and_escapes_stored_text() {
 #[test]
 fn the_ess_plot_draws_every_round_and_the_campaign_s_ess_floor() {
     let dir = tempfile::tempdir().unwrap();
-    let store = synthetic_store_with(dir.path(), 8, 50, true);
+    let store = synthetic_store_with(dir.path(), 8, 50, true, MULLER_BROWN);
     let page = html::render(&store).expect("render");
     let fig = element(&page, "figure", "plot-ess");
     assert!(!fig.contains("data-empty"), "{fig:.300}");
@@ -430,6 +440,33 @@ fn the_ess_plot_draws_every_round_and_the_campaign_s_ess_floor() {
     // The rounds table shows each round's fraction.
     let table = element(&page, "table", "rounds-table");
     assert!(table.contains("<td>0.150</td>") && table.contains("<td>0.500</td>"));
+}
+
+#[test]
+fn a_2d_external_model_gets_its_samples_drawn_without_contours() {
+    // The report never starts a user's program: an external model's map has samples and
+    // minima but no contour lines, and says why.
+    let dir = tempfile::tempdir().unwrap();
+    let system = "model = \"external\"\ncommand = [\"python3\", \"energy.py\"]\ndim = 2";
+    let store = synthetic_store_with(dir.path(), 5, 100, false, system);
+    let page = html::render(&store).expect("render");
+    assert!(
+        !page.contains("could not be read again"),
+        "the campaign did not parse"
+    );
+    let fig = element(&page, "figure", "plot-landscape");
+    assert!(!fig.contains("data-empty"));
+    assert!(fig.matches("<circle").count() >= 5 * 100, "samples missing");
+    assert!(fig.contains("No contour lines: the energy is an external model"));
+    // Contours are the only grey-blue polylines; there are none.
+    assert!(
+        !fig.contains("stroke=\"#8F9EA8\""),
+        "contours drawn for an external model"
+    );
+    let mb_dir = tempfile::tempdir().unwrap();
+    let mb = synthetic_store(mb_dir.path(), 5, 100);
+    let mb_page = html::render(&mb).expect("render");
+    assert!(element(&mb_page, "figure", "plot-landscape").contains("stroke=\"#8F9EA8\""));
 }
 
 #[test]

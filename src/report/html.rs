@@ -301,6 +301,8 @@ code { font: 12.5px ui-monospace, "SFMono-Regular", Menlo, Consolas, monospace; 
 footer { color: var(--muted); font-size: 13px; padding: 10px 0 36px; }
 "#;
 
+/// The document head: title, inline style, and a reload once a minute while the
+/// campaign has not finished.
 fn head(c: &Context) -> String {
     // A campaign that has not finished is probably running: the browser reloads the
     // page (which the engine rewrites after each round) once a minute.
@@ -317,6 +319,8 @@ fn head(c: &Context) -> String {
     )
 }
 
+/// The page header: campaign name, system, kT, seed, file hash and path, tarn versions,
+/// counts, and where the campaign stands.
 fn header(c: &Context) -> String {
     let (system, kt, seed) = match &c.campaign {
         Ok(k) => (
@@ -386,6 +390,7 @@ fn header(c: &Context) -> String {
     out
 }
 
+/// Whether the campaign finished, by which stop rule and why, or that it has not.
 fn status_line(c: &Context) -> String {
     let last = c.rounds.last().map_or(0, |r| r.round);
     match &c.finished {
@@ -414,6 +419,7 @@ fn parse_problem(c: &Context) -> String {
     }
 }
 
+/// The caution, visible near the top of every report.
 fn caution() -> String {
     format!(
         "<aside class=\"caution\" id=\"caution\" role=\"note\"><strong>Caution.</strong> {}</aside>\n",
@@ -421,6 +427,7 @@ fn caution() -> String {
     )
 }
 
+/// Links to the sections, so a long report is quick to move through.
 fn contents() -> String {
     let links = [
         ("discovery", "Discovery"),
@@ -440,6 +447,7 @@ fn contents() -> String {
     out
 }
 
+/// The discovery timeline: states against rounds and against energy evaluations.
 fn discovery(c: &Context) -> anyhow::Result<String> {
     let rounds: Vec<(u32, u32, u32)> = c
         .rounds
@@ -484,6 +492,8 @@ fn discovery(c: &Context) -> anyhow::Result<String> {
     Ok(out)
 }
 
+/// Free energies of the states by round, at most [`MAX_FREE_ENERGY_TRACKS`] of them
+/// (those of lowest latest free energy), with a legend in HTML.
 fn free_energy_section(c: &Context) -> anyhow::Result<String> {
     let mut order: Vec<usize> = (0..c.states.len())
         .filter(|&i| {
@@ -573,6 +583,7 @@ fn ess_points(c: &Context) -> Vec<(u32, f64)> {
         .collect()
 }
 
+/// The ESS fraction by round, or a notice saying there is no evaluation stage.
 fn ess_section(c: &Context) -> anyhow::Result<String> {
     let axes = Axes {
         x: "round",
@@ -693,6 +704,27 @@ fn landscape_box(
     (pad(&mut xs.into_iter()), pad(&mut ys.into_iter()))
 }
 
+/// The system's energy on a 160 × 110 grid over the rectangle, for the contour lines;
+/// `None` for an external model (a process the report does not start) or a model that
+/// cannot be built or evaluated here.
+fn energy_grid(system: Option<&SystemSpec>, x: (f64, f64), y: (f64, f64)) -> Option<Grid> {
+    let spec = system.filter(|s| !matches!(s, SystemSpec::External { .. }))?;
+    let model = spec.build().ok()?;
+    let (nx, ny) = (160, 110);
+    let points = Grid::points(nx, ny, x, y);
+    let mut values = vec![0.0; nx * ny];
+    model.evaluate(&points, &mut values, None).ok()?;
+    Some(Grid {
+        nx,
+        ny,
+        x,
+        y,
+        values,
+    })
+}
+
+/// The sample map of a 2-D system: thinned explore samples coloured by round over the
+/// energy's contour lines, with the catalogue's minima; a note for other systems.
 fn landscape_section(store: &Store, c: &Context) -> anyhow::Result<String> {
     let mut out =
         String::from("<section id=\"landscape\">\n<h2>Samples over the energy landscape</h2>\n");
@@ -718,30 +750,10 @@ fn landscape_section(store: &Store, c: &Context) -> anyhow::Result<String> {
         .collect();
     let (bx, by) = landscape_box(&samples, &minima);
     let kt = c.campaign.as_ref().map_or(1.0, |k| k.kt);
-    let model = match &c.system {
-        Some(spec @ SystemSpec::External { .. }) => {
-            let _ = spec;
-            None
-        }
-        Some(spec) => spec.build().ok(),
-        None => None,
-    };
-    let grid = match &model {
-        Some(m) if !samples.is_empty() || !minima.is_empty() => {
-            let (nx, ny) = (160, 110);
-            let pts = Grid::points(nx, ny, bx, by);
-            let mut values = vec![0.0; nx * ny];
-            m.evaluate(&pts, &mut values, None)
-                .map(|()| Grid {
-                    nx,
-                    ny,
-                    x: bx,
-                    y: by,
-                    values,
-                })
-                .ok()
-        }
-        _ => None,
+    let grid = if samples.is_empty() && minima.is_empty() {
+        None
+    } else {
+        energy_grid(c.system.as_ref(), bx, by)
     };
     let (levels, step) = grid
         .as_ref()
@@ -912,6 +924,8 @@ fn cv_label(cv: Option<&serde_json::Value>) -> String {
     }
 }
 
+/// The 1-D profile of the newest evaluation with its reference and RMS difference, or
+/// a labelled placeholder when the store holds no profile.
 fn profile_section(store: &Store, c: &Context) -> anyhow::Result<String> {
     let mut out = String::from("<section id=\"profile\">\n<h2>Free-energy profile</h2>\n");
     let cv = c
@@ -1002,6 +1016,8 @@ fn profile_section(store: &Store, c: &Context) -> anyhow::Result<String> {
     Ok(out)
 }
 
+/// The catalogue: each state's energy, free energy, minimum (for up to three
+/// coordinates), first sighting, cost to find and sightings.
 fn catalogue_section(c: &Context) -> String {
     let unit = c.energy_unit();
     let mut out = String::from("<section id=\"catalogue\">\n<h2>Catalogue</h2>\n");
@@ -1056,6 +1072,7 @@ fn catalogue_section(c: &Context) -> String {
     out
 }
 
+/// The campaign's stop reason and the per-round table.
 fn rounds_section(c: &Context) -> String {
     let mut out = String::from("<section id=\"rounds\">\n<h2>Rounds</h2>\n");
     match &c.finished {
@@ -1101,6 +1118,7 @@ fn rounds_section(c: &Context) -> String {
     out
 }
 
+/// The stored campaign file, folded away, for audit.
 fn campaign_file_section(c: &Context) -> String {
     format!(
         "<section id=\"campaign-file\">\n<h2>Campaign file</h2>\n<p class=\"lead\">The text this campaign runs with, exactly as stored (SHA-256 <code>{}</code>). A campaign file names the programs it runs; read one from elsewhere before running it.</p>\n<details><summary>show {}</summary>\n<pre class=\"source\">{}</pre>\n</details>\n</section>\n",
@@ -1110,6 +1128,7 @@ fn campaign_file_section(c: &Context) -> String {
     )
 }
 
+/// The footer: what wrote the page, from which round, and the caution again.
 fn footer(c: &Context) -> String {
     format!(
         "<footer><div class=\"inner\">Written by tarn {} from the store of campaign {} after round {}. Self-contained: no network, no scripts. {}</div></footer>\n",
