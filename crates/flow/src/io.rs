@@ -20,7 +20,7 @@
 use crate::flow::{build_layout, Flow, Whitening};
 use crate::frame::Frame;
 use crate::real::Real;
-use crate::spec::FlowSpec;
+use crate::spec::{FlowSpec, FrameSpec};
 use crate::FlowError;
 use safetensors::tensor::{Dtype, SafeTensors, TensorView};
 
@@ -143,6 +143,19 @@ impl<T: Real> Flow<T> {
         }
         let spec: FlowSpec = serde_json::from_str(get("architecture")?)
             .map_err(|e| bad(format!("metadata `architecture`: {e}")))?;
+        // `validate` multiplies the frame's sizes unchecked; refuse a product that
+        // overflows before it does.
+        if let FrameSpec::CentreOfMass {
+            n_particles,
+            spatial_dim,
+        } = spec.frame
+        {
+            if n_particles.checked_mul(spatial_dim).is_none() {
+                return Err(bad(format!(
+                    "metadata `architecture`: frame.n_particles * frame.spatial_dim = {n_particles} * {spatial_dim} overflows"
+                )));
+            }
+        }
         spec.validate()
             .map_err(|e| bad(format!("metadata `architecture`: {e}")))?;
         check_size_bound(&spec, bytes.len())?;
@@ -177,18 +190,27 @@ impl<T: Real> Flow<T> {
         }
         let whitening = if spec.whiten {
             expected += 2;
-            let mean = read_real::<f64>(&st, "whitening.mean", &[d])?;
-            let chol = read_real::<f64>(&st, "whitening.chol", &[d, d])?;
+            // Read in this flow's precision, so that the checks below hold for the
+            // values the flow will use (an f64 diagonal of 1e-60 is 0 in f32).
+            let mean = read_real::<T>(&st, "whitening.mean", &[d])?;
+            let chol = read_real::<T>(&st, "whitening.chol", &[d, d])?;
             for i in 0..d {
-                if chol[i * d + i].is_nan() || chol[i * d + i] <= 0.0 {
+                let diag = chol[i * d + i].to64();
+                if diag.is_nan() || diag <= 0.0 {
                     return Err(bad(format!("whitening.chol[{i},{i}] must be > 0")));
                 }
-                if (i + 1..d).any(|j| chol[i * d + j] != 0.0) {
+                if (i + 1..d).any(|j| chol[i * d + j].to64() != 0.0) {
                     return Err(bad("whitening.chol must be lower triangular"));
                 }
             }
-            let cv = |v: &[f64]| v.iter().map(|&x| T::of(x)).collect::<Vec<T>>();
-            Some(Whitening::from_parts(cv(&mean), cv(&chol)))
+            let w = Whitening::from_parts(mean, chol);
+            if w.chol_inv.iter().any(|v| !v.to64().is_finite()) {
+                return Err(bad(format!(
+                    "whitening.chol is too close to singular for {} precision",
+                    T::DTYPE_NAME
+                )));
+            }
+            Some(w)
         } else {
             None
         };
@@ -346,5 +368,90 @@ fn read_real<T: Real>(
             "tensor `{name}` holds a non-finite value at flat index {i}"
         )));
     }
-    Ok(vals.into_iter().map(T::of).collect())
+    // A finite f64 beyond the range of f32 becomes infinite in an f32 flow.
+    let out: Vec<T> = vals.into_iter().map(T::of).collect();
+    if let Some(i) = out.iter().position(|v| !v.to64().is_finite()) {
+        return Err(bad(format!(
+            "tensor `{name}` holds a non-finite value at flat index {i} in {} precision",
+            T::DTYPE_NAME
+        )));
+    }
+    Ok(out)
+}
+
+#[cfg(test)]
+mod tests {
+    //! Regressions found by fuzzing `Flow::from_safetensors` (fuzz/fuzz_targets/flow_weights.rs).
+
+    use super::*;
+
+    /// A small whitened f64 flow on two coordinates (identity frame).
+    fn whitened_f64() -> Flow<f64> {
+        let mut spec = FlowSpec::new(2);
+        spec.n_layers = 1;
+        spec.hidden_width = 2;
+        spec.hidden_layers = 1;
+        spec.whiten = true;
+        let data: Vec<f64> = (0..20)
+            .map(|i| ((i * 7 % 5) as f64) + 0.1 * i as f64)
+            .collect();
+        Flow::new(spec, Some(&data), 3).unwrap()
+    }
+
+    /// Rewrites the `architecture` metadata of a weight file, keeping its tensors.
+    fn with_architecture(bytes: &[u8], arch: &str) -> Vec<u8> {
+        let n = u64::from_le_bytes(bytes[..8].try_into().unwrap()) as usize;
+        let mut h: serde_json::Value = serde_json::from_slice(&bytes[8..8 + n]).unwrap();
+        h["__metadata__"]["architecture"] = serde_json::Value::String(arch.into());
+        let hs = serde_json::to_vec(&h).unwrap();
+        let mut out = (hs.len() as u64).to_le_bytes().to_vec();
+        out.extend(hs);
+        out.extend(&bytes[8 + n..]);
+        out
+    }
+
+    #[test]
+    fn f64_weights_beyond_the_f32_range_are_refused_by_an_f32_reader() {
+        let mut flow = whitened_f64();
+        flow.params[0] = 1e300;
+        let bytes = flow.to_safetensors().unwrap();
+        assert!(Flow::<f64>::from_safetensors(&bytes).is_ok());
+        let err = Flow::<f32>::from_safetensors(&bytes)
+            .unwrap_err()
+            .to_string();
+        assert!(
+            err.contains("non-finite value") && err.contains("F32"),
+            "{err}"
+        );
+    }
+
+    #[test]
+    fn a_whitening_factor_that_overflows_or_vanishes_in_f32_is_refused() {
+        // 1e300 overflows f32, 1e-60 is 0 in f32, and 1e-40 is a subnormal f32 whose
+        // inverse overflows.
+        for diag in [1e300, 1e-60, 1e-40] {
+            let mut flow = whitened_f64();
+            let w = flow.whitening.as_mut().unwrap();
+            w.chol[0] = diag;
+            let bytes = flow.to_safetensors().unwrap();
+            let err = Flow::<f32>::from_safetensors(&bytes)
+                .unwrap_err()
+                .to_string();
+            assert!(err.contains("whitening.chol"), "diagonal {diag}: {err}");
+        }
+    }
+
+    #[test]
+    fn a_frame_whose_size_overflows_is_refused_without_a_panic() {
+        let bytes = whitened_f64().to_safetensors().unwrap();
+        let arch = format!(
+            r#"{{"data_dim":0,"frame":{{"kind":"centre_of_mass","n_particles":{},"spatial_dim":{}}},"n_layers":1,"hidden_width":2,"hidden_layers":1}}"#,
+            1u64 << 33,
+            1u64 << 31
+        );
+        let err = Flow::<f32>::from_safetensors(&with_architecture(&bytes, &arch))
+            .unwrap_err()
+            .to_string();
+        assert!(err.contains("architecture"), "{err}");
+    }
 }
