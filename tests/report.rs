@@ -18,12 +18,13 @@ use tarn::store::{
 };
 
 /// The sections every report has, by element id.
-const SECTIONS: [&str; 8] = [
+const SECTIONS: [&str; 9] = [
     "discovery",
     "free-energies",
     "ess",
     "landscape",
     "profile",
+    "paths",
     "catalogue",
     "rounds",
     "campaign-file",
@@ -40,10 +41,17 @@ const PLOTS: [&str; 5] = [
 
 /// The plots a report of `store` must draw: [`PLOTS`], and the profile when the newest
 /// evaluate task stored one (the shipped flow campaign asks for one).
-fn expected_plots(store: &Store) -> Vec<&'static str> {
-    let mut want = PLOTS.to_vec();
+fn expected_plots(store: &Store) -> Vec<String> {
+    let mut want: Vec<String> = PLOTS.iter().map(|s| s.to_string()).collect();
     if stored_profile(store) {
-        want.push("plot-profile");
+        want.push("plot-profile".into());
+    }
+    // Latent paths from the first state to up to three others, when a flow exists.
+    let states = store.states().unwrap();
+    if !store.models().unwrap().is_empty() && states.len() >= 2 {
+        for s in states.iter().skip(1).take(3) {
+            want.push(format!("plot-path-{}-{}", states[0].id, s.id));
+        }
     }
     want
 }
@@ -131,7 +139,7 @@ fn the_report_of_a_2d_flow_campaign_has_every_section_and_every_plot_is_drawn() 
 
     // Every plot is present, drawn (not a notice), and carries data marks.
     let plots = expected_plots(&store);
-    for &id in &plots {
+    for id in plots.iter().map(String::as_str) {
         let fig = element(&page, "figure", id);
         assert!(!fig.contains("data-empty"), "{id} is a notice: {fig:.400}");
         let s = svgs(fig);
@@ -687,7 +695,7 @@ fn the_report_loads_in_headless_chromium_with_every_plot_and_no_console_error() 
         all.len(),
         figure_ids(&dom)
     );
-    for &id in &plots {
+    for id in plots.iter().map(String::as_str) {
         let fig = element(&dom, "figure", id);
         let s = svgs(fig);
         assert_eq!(s.len(), 1, "{id}: {} svg elements in the DOM", s.len());

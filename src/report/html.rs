@@ -103,6 +103,7 @@ pub fn render(store: &Store) -> anyhow::Result<String> {
     page.push_str("</div>\n");
     page.push_str(&landscape_section(store, &c)?);
     page.push_str(&profile_section(store, &c)?);
+    page.push_str(&paths_section(store, &c)?);
     page.push_str(&catalogue_section(&c));
     page.push_str(&rounds_section(&c));
     page.push_str(&campaign_file_section(&c));
@@ -435,6 +436,7 @@ fn contents() -> String {
         ("ess", "Reweighting quality"),
         ("landscape", "Samples"),
         ("profile", "Profile"),
+        ("paths", "Paths"),
         ("catalogue", "Catalogue"),
         ("rounds", "Rounds"),
         ("campaign-file", "Campaign file"),
@@ -1013,6 +1015,67 @@ fn profile_section(store: &Store, c: &Context) -> anyhow::Result<String> {
         );
     }
     out.push_str("</div>\n</div>\n</section>\n");
+    Ok(out)
+}
+
+/// Latent paths from the first state found to up to three others: the straight line
+/// in the flow's latent space pushed through the flow, energy along it (unrelaxed; the
+/// relaxed path and its saddle come from `tarn path --relax`).
+fn paths_section(store: &Store, c: &Context) -> anyhow::Result<String> {
+    let mut out = String::from("<section id=\"paths\">\n<h2>Latent paths between states</h2>\n");
+    let has_model = !store.models()?.is_empty();
+    if !has_model || c.states.len() < 2 {
+        out.push_str(r#"<p class="placeholder" data-empty="no latent path"><strong>No latent path drawn:</strong> paths need a flow model (a retrain stage that has run) and at least two states.</p>
+</section>
+"#);
+        return Ok(out);
+    }
+    let kt = c.campaign.as_ref().map(|k| k.kt).unwrap_or(1.0);
+    out.push_str(r#"<p class="lead">The straight line between two states' minima in the flow's latent space, pushed through the flow: where the flow has learned the states' surroundings, this is a path of low energy between them, and its highest image estimates the barrier (a path of discrete images can pass just beside the saddle, so it is an estimate, not a bound). <code>tarn path NAME --from A --to B --relax</code> relaxes it into a minimum-energy path and reports the saddle.</p>
+<div class="pair">
+"#);
+    let from = c.states[0].id;
+    for to in c.states.iter().skip(1).take(3).map(|s| s.id) {
+        let p = match crate::report::path::latent_path(store, from, to, 24, false) {
+            Ok(p) => p,
+            Err(e) => {
+                let _ = writeln!(
+                    out,
+                    r#"<p class="placeholder" data-empty="path failed">Path {from} → {to}: {}</p>"#,
+                    escape(&format!("{e:#}"))
+                );
+                continue;
+            }
+        };
+        let e0 = p.energies[0];
+        let data = plots::ProfileData {
+            centers: p.t.clone(),
+            free_energy: p.energies.iter().map(|e| (e - e0) / kt).collect(),
+            band: None,
+            reference: None,
+        };
+        let svg = plots::profile(
+            &data,
+            Axes {
+                x: "path parameter (0 at the first state, 1 at the second)",
+                y: "energy along the path [kT]",
+            },
+        )?;
+        out.push_str(&figure(
+            &format!("plot-path-{from}-{to}"),
+            &svg,
+            &format!("latent path from state {from} to state {to}"),
+            &escape(&format!(
+                "State {from} → state {to}: highest point {:.4} (image {} of {}), {:.2} kT above state {from}.",
+                p.highest,
+                p.highest_image,
+                p.t.len(),
+                (p.highest - e0) / kt
+            )),
+            None,
+        ));
+    }
+    out.push_str("</div>\n</section>\n");
     Ok(out)
 }
 
