@@ -11,11 +11,12 @@
 
 use serde::Deserialize;
 
+use super::states::{assign_by_quench, free_energy_arrays, Matching};
 use super::{rng, Output, Task};
 use crate::flow::{generate, Flow};
 use crate::physics::cv::CollectiveVariable;
-use crate::physics::fingerprint::{assign, Fingerprint, StateTolerance};
-use crate::physics::quench::{quench_batch, FireParams, QuenchStatus};
+use crate::physics::fingerprint::StateTolerance;
+use crate::physics::quench::FireParams;
 use crate::physics::{EnergyModel, SystemSpec};
 use crate::protocol::Array;
 use crate::stats::{
@@ -98,31 +99,17 @@ pub fn reweight(task: &Task) -> Result<Output, String> {
         .iter()
         .flat_map(|&i| g.x[i * dim..(i + 1) * dim].iter().copied())
         .collect();
-    let fire = FireParams {
+    let matching = Matching {
         force_tolerance: p.force_tolerance,
         max_steps: p.max_steps,
-        ..FireParams::default()
+        energy_tolerance: p.energy_tolerance,
+        fingerprint_tolerance: p.fingerprint_tolerance,
     };
-    let q = quench_batch(model.as_ref(), &xs, &fire).map_err(|e| format!("quench: {e}"))?;
-    let fp = Fingerprint::for_system(&spec);
-    let known: Vec<(f64, Vec<f64>)> = (0..k)
-        .map(|i| {
-            (
-                cat_e.data[i],
-                fp.compute(&catalogue.data[i * dim..(i + 1) * dim]),
-            )
-        })
-        .collect();
-    let tol = StateTolerance {
-        energy: p.energy_tolerance,
-        fingerprint: p.fingerprint_tolerance,
-    };
+    let (assigned, quench_evals) =
+        assign_by_quench(&spec, model.as_ref(), &xs, &catalogue, &cat_e, &matching)?;
     let mut labels = vec![None; g.log_weight.len()];
     for (j, &i) in finite.iter().enumerate() {
-        if q.status[j] == QuenchStatus::Converged {
-            labels[i] =
-                assign(q.energies[j], &fp.compute(q.minimum(j)), &known, &tol).map(|s| s as u32);
-        }
+        labels[i] = assigned[j];
     }
     let ids: Vec<u32> = (0..k as u32).collect();
     let opts = BootstrapOptions {
@@ -132,19 +119,10 @@ pub fn reweight(task: &Task) -> Result<Output, String> {
     let est = state_free_energies(&g.log_weight, &labels, &ids, &opts, &mut rng(task))
         .map_err(|e| format!("free energies: {e}"))?;
     let logz = log_partition_estimate(&g.log_weight).map_err(|e| format!("ln Z: {e}"))?;
-    let mut f = vec![f64::NAN; k];
-    let mut ferr = vec![f64::NAN; k];
-    for s in &est.states {
-        let i = s.state as usize;
-        if i < k {
-            f[i] = s.free_energy.unwrap_or(f64::NAN);
-            ferr[i] = s.free_energy_err.unwrap_or(f64::NAN);
-        }
-    }
-    out.energy_evals = g.energy_evaluations + q.n_evals;
-    out.arrays.insert("free_energy".into(), Array::vector(f));
-    out.arrays
-        .insert("free_energy_err".into(), Array::vector(ferr));
+    let (f, ferr) = free_energy_arrays(&est, k);
+    out.energy_evals = g.energy_evaluations + quench_evals;
+    out.arrays.insert("free_energy".into(), f);
+    out.arrays.insert("free_energy_err".into(), ferr);
     let n = g.log_weight.len() as f64;
     out.metrics.insert("ess".into(), Some(est.ess));
     out.metrics.insert("ess_fraction".into(), Some(est.ess / n));

@@ -11,10 +11,8 @@
 
 use serde::Deserialize;
 
+use super::states::{assign_by_quench, free_energy_arrays, Matching};
 use super::{rng, Output, Task};
-use crate::physics::fingerprint::{assign, Fingerprint, StateTolerance};
-use crate::physics::quench::{quench_batch, FireParams, QuenchStatus};
-use crate::protocol::Array;
 use crate::stats::{kish_ess, state_free_energies, BootstrapOptions, Mbar, MbarOptions};
 
 /// Parameters shared by the sample-reweighting kinds.
@@ -30,14 +28,13 @@ struct SampleParams {
 
 impl Default for SampleParams {
     fn default() -> Self {
-        let tol = StateTolerance::default();
-        let fire = FireParams::default();
+        let m = Matching::default();
         SampleParams {
             bootstrap: 400,
-            force_tolerance: fire.force_tolerance,
-            max_steps: fire.max_steps,
-            energy_tolerance: tol.energy,
-            fingerprint_tolerance: tol.fingerprint,
+            force_tolerance: m.force_tolerance,
+            max_steps: m.max_steps,
+            energy_tolerance: m.energy_tolerance,
+            fingerprint_tolerance: m.fingerprint_tolerance,
         }
     }
 }
@@ -87,40 +84,24 @@ pub fn reweight_bias(task: &Task) -> Result<Output, String> {
 /// Quench-assigns the round's samples and estimates state free energies with `log_w`.
 fn estimate(task: &Task, p: &SampleParams, log_w: &[f64]) -> Result<Output, String> {
     let (spec, model) = task.model()?;
-    let dim = model.dim();
     let samples = task.input("samples")?;
     let catalogue = task.input("catalogue")?;
     let cat_e = task.input("catalogue_energies")?;
     let k = catalogue.rows();
-    let fire = FireParams {
+    let matching = Matching {
         force_tolerance: p.force_tolerance,
         max_steps: p.max_steps,
-        ..FireParams::default()
+        energy_tolerance: p.energy_tolerance,
+        fingerprint_tolerance: p.fingerprint_tolerance,
     };
-    let q =
-        quench_batch(model.as_ref(), &samples.data, &fire).map_err(|e| format!("quench: {e}"))?;
-    let fp = Fingerprint::for_system(&spec);
-    let known: Vec<(f64, Vec<f64>)> = (0..k)
-        .map(|i| {
-            (
-                cat_e.data[i],
-                fp.compute(&catalogue.data[i * dim..(i + 1) * dim]),
-            )
-        })
-        .collect();
-    let tol = StateTolerance {
-        energy: p.energy_tolerance,
-        fingerprint: p.fingerprint_tolerance,
-    };
-    let labels: Vec<Option<u32>> = (0..samples.rows())
-        .map(|j| {
-            (q.status[j] == QuenchStatus::Converged)
-                .then(|| {
-                    assign(q.energies[j], &fp.compute(q.minimum(j)), &known, &tol).map(|s| s as u32)
-                })
-                .flatten()
-        })
-        .collect();
+    let (labels, quench_evals) = assign_by_quench(
+        &spec,
+        model.as_ref(),
+        &samples.data,
+        &catalogue,
+        &cat_e,
+        &matching,
+    )?;
     let ids: Vec<u32> = (0..k as u32).collect();
     let opts = BootstrapOptions {
         n_replicates: p.bootstrap,
@@ -128,21 +109,13 @@ fn estimate(task: &Task, p: &SampleParams, log_w: &[f64]) -> Result<Output, Stri
     };
     let est = state_free_energies(log_w, &labels, &ids, &opts, &mut rng(task))
         .map_err(|e| format!("free energies: {e}"))?;
-    let mut f = vec![f64::NAN; k];
-    let mut ferr = vec![f64::NAN; k];
-    for s in &est.states {
-        if (s.state as usize) < k {
-            f[s.state as usize] = s.free_energy.unwrap_or(f64::NAN);
-            ferr[s.state as usize] = s.free_energy_err.unwrap_or(f64::NAN);
-        }
-    }
+    let (f, ferr) = free_energy_arrays(&est, k);
     let mut out = Output {
-        energy_evals: q.n_evals,
+        energy_evals: quench_evals,
         ..Default::default()
     };
-    out.arrays.insert("free_energy".into(), Array::vector(f));
-    out.arrays
-        .insert("free_energy_err".into(), Array::vector(ferr));
+    out.arrays.insert("free_energy".into(), f);
+    out.arrays.insert("free_energy_err".into(), ferr);
     let ess = kish_ess(log_w).map_err(|e| format!("ESS: {e}"))?;
     out.metrics.insert("ess".into(), Some(ess));
     out.metrics

@@ -11,6 +11,7 @@ pub mod evaluate_samples;
 pub mod explore;
 pub mod external;
 pub mod flow;
+pub mod states;
 
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
