@@ -662,9 +662,14 @@ fn shell_metacharacters_in_arguments_and_params_are_never_executed() {
     assert_eq!(rounds_json(&env).len(), 2);
     assert_eq!(find_named(env.path(), "pwned"), Vec::<PathBuf>::new());
     assert!(env.path().join("x/keep").exists(), "the canary was removed");
-    // Every task directory kept its own canary-free working directory too.
+    // Every task ran once and succeeded the first time (2 rounds of 2 walkers and a
+    // quench): the worker accepted its arguments in every task.
     let tasks = find_named(&env.state().join("faults/tasks"), "task.json");
     assert_eq!(tasks.len(), 2 * 3, "task directories: {tasks:?}");
+    assert!(
+        tasks.iter().all(|t| t.parent().unwrap().ends_with("a1")),
+        "{tasks:?}"
+    );
 }
 
 /// Row: outputs that are symbolic links leading out of the task directory — an array
