@@ -430,6 +430,15 @@ impl Campaign {
             .evaluate
             .map(|s| check_stage(ctx, "evaluate", Role::Evaluate, s, &mut names))
             .transpose()?;
+        for (i, st) in explore.iter().enumerate() {
+            check_builtin_params(ctx, &format!("explore[{i}]"), st, &system, raw.kt)?;
+        }
+        check_builtin_params(ctx, "dedup", &dedup, &system, raw.kt)?;
+        for (path, st) in [("retrain", &retrain), ("evaluate", &evaluate)] {
+            if let Some(st) = st {
+                check_builtin_params(ctx, path, st, &system, raw.kt)?;
+            }
+        }
         let stop = check_stop(ctx, raw.stop)?;
         if let Some(c) = &stop.coverage {
             let spec: crate::physics::models::SystemSpec =
@@ -799,6 +808,23 @@ fn check_stage(
         pool_limit,
         params: toml_to_json(&raw.params),
     })
+}
+
+/// A built-in stage's `params`, checked by the kind itself.
+fn check_builtin_params(
+    ctx: &Ctx,
+    path: &str,
+    stage: &Stage,
+    system: &System,
+    kt: f64,
+) -> Result<(), SpecError> {
+    let Worker::Builtin(kind) = &stage.worker else {
+        return Ok(());
+    };
+    let spec: crate::physics::models::SystemSpec =
+        serde_json::from_value(system.table.clone()).expect("validated system");
+    crate::workers::check_params(kind, &stage.params, &spec, system.dim, kt)
+        .map_err(|e| ctx.err(&format!("{path}.params"), format!("{kind}: {e}")))
 }
 
 /// The built-in kinds that can fill `role`.

@@ -142,6 +142,30 @@ fn missing_sections_and_executor_limits_are_named() {
 }
 
 #[test]
+fn built_in_params_are_checked_before_anything_runs() {
+    let typo = GOOD.replace(
+        "kind = \"hold\"\nwalkers = 2",
+        "kind = \"langevin\"\nwalkers = 2\n[explore.params]\nn_step = 10",
+    );
+    let e = parse(&typo).unwrap_err().to_string();
+    assert!(e.starts_with("c.toml:15:1: explore[0].params: langevin: unknown field `n_step`, expected one of `n_steps`"), "{e}");
+    let range = GOOD.replace(
+        "kind = \"hold\"\nwalkers = 2",
+        "kind = \"langevin\"\nwalkers = 2\n[explore.params]\ndt = -1.0",
+    );
+    let e = parse(&range).unwrap_err().to_string();
+    assert!(
+        e.contains("explore[0].params: langevin: invalid parameter `dt`: must be positive"),
+        "{e}"
+    );
+    let hold = GOOD.replace("walkers = 2", "walkers = 2\n[explore.params]\nsteps = 3");
+    assert!(parse(&hold)
+        .unwrap_err()
+        .to_string()
+        .contains("the hold kind takes no params"));
+}
+
+#[test]
 fn retry_delays_grow_are_capped_and_jitter_is_seeded() {
     let p = RetryPolicy {
         attempts: 5,

@@ -67,6 +67,13 @@ impl Default for ReweightParams {
     }
 }
 
+/// Checks `reweight` parameters (for `tarn check`).
+pub fn check(params: &serde_json::Value) -> Result<(), String> {
+    serde_json::from_value::<ReweightParams>(params.clone())
+        .map(|_| ())
+        .map_err(|e| e.to_string())
+}
+
 /// Runs the `reweight` kind.
 pub fn reweight(task: &Task) -> Result<Output, String> {
     let p: ReweightParams = task.params()?;

@@ -39,6 +39,13 @@ impl Default for SampleParams {
     }
 }
 
+/// Checks `mbar` and `reweight-bias` parameters (for `tarn check`).
+pub fn check(params: &serde_json::Value) -> Result<(), String> {
+    serde_json::from_value::<SampleParams>(params.clone())
+        .map(|_| ())
+        .map_err(|e| e.to_string())
+}
+
 /// The `mbar` kind: every explore stage is a thermodynamic state at its declared
 /// temperature factor; MBAR combines them and reweights to the campaign's kT.
 pub fn mbar(task: &Task) -> Result<Output, String> {

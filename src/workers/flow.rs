@@ -56,7 +56,8 @@ fn flow_spec(
 
 /// The training settings, with the campaign's kT and the task's thread count.
 fn train_params(
-    task: &Task,
+    kt: f64,
+    threads: u32,
     table: &serde_json::Map<String, serde_json::Value>,
 ) -> Result<TrainParams, String> {
     for fixed in ["kt", "threads"] {
@@ -65,9 +66,32 @@ fn train_params(
         }
     }
     let mut t = table.clone();
-    t.insert("kt".into(), task.file.kt.into());
-    t.insert("threads".into(), task.file.threads.into());
+    t.insert("kt".into(), kt.into());
+    t.insert("threads".into(), threads.into());
     serde_json::from_value(serde_json::Value::Object(t)).map_err(|e| format!("params.train: {e}"))
+}
+
+/// Checks `realnvp` parameters without training (for `tarn check`).
+pub fn check_retrain(
+    system: &SystemSpec,
+    dim: usize,
+    kt: f64,
+    params: &serde_json::Value,
+) -> Result<(), String> {
+    let p: RetrainParams = serde_json::from_value(params.clone()).map_err(|e| e.to_string())?;
+    flow_spec(system, dim, &p.flow)?
+        .validate()
+        .map_err(|e| format!("params.flow: {e}"))?;
+    train_params(kt, 1, &p.train)?
+        .validate()
+        .map_err(|e| format!("params.train: {e}"))
+}
+
+/// Checks `generate` parameters (for `tarn check`).
+pub fn check_generate(params: &serde_json::Value) -> Result<(), String> {
+    serde_json::from_value::<GenerateParams>(params.clone())
+        .map(|_| ())
+        .map_err(|e| e.to_string())
 }
 
 /// The task's current flow model, if it was handed one.
@@ -91,7 +115,7 @@ pub fn retrain(task: &Task) -> Result<Output, String> {
     let (system, model) = task.model()?;
     let dim = model.dim();
     let spec = flow_spec(&system, dim, &p.flow)?;
-    let tp = train_params(task, &p.train)?;
+    let tp = train_params(task.file.kt, task.file.threads, &p.train)?;
     let data = task.input("train")?;
     let previous = current_model(task)?;
     let warm = previous.as_ref().is_some_and(|f| f.spec() == &spec);

@@ -74,6 +74,49 @@ impl Task {
     }
 }
 
+/// Checks a built-in kind's parameters without running it, so that `tarn check` (and
+/// `tarn run` before its first task) catches a mistyped or out-of-range key before a
+/// campaign starts, instead of after a worker's retries.
+pub fn check_params(
+    kind: &str,
+    params: &serde_json::Value,
+    system: &SystemSpec,
+    dim: usize,
+    kt: f64,
+) -> Result<(), String> {
+    use crate::flow::LatentMcParams;
+    use crate::physics::explore::{LangevinParams, MetadParams, MetropolisParams};
+    let v = match params {
+        serde_json::Value::Null => serde_json::json!({}),
+        other => other.clone(),
+    };
+    fn de<T: DeserializeOwned>(v: &serde_json::Value) -> Result<T, String> {
+        serde_json::from_value(v.clone()).map_err(|e| e.to_string())
+    }
+    match kind {
+        "hold" => match v.as_object() {
+            Some(o) if o.is_empty() => Ok(()),
+            _ => Err("the hold kind takes no params".into()),
+        },
+        "metropolis" => de::<MetropolisParams>(&v).map(|_| ()),
+        "langevin" => de::<LangevinParams>(&v)?
+            .validate()
+            .map_err(|e| e.to_string()),
+        "metadynamics" => de::<MetadParams>(&v)?
+            .validate(dim, system.particle_dims())
+            .map_err(|e| e.to_string()),
+        "latent-metropolis" => de::<LatentMcParams>(&v)?
+            .validate()
+            .map_err(|e| e.to_string()),
+        "generate" => flow::check_generate(&v),
+        "quench" => de::<dedup::QuenchParams>(&v).map(|_| ()),
+        "realnvp" => flow::check_retrain(system, dim, kt, &v),
+        "reweight" => evaluate::check(&v),
+        "mbar" | "reweight-bias" => evaluate_samples::check(&v),
+        other => Err(format!("'{other}' is not a built-in kind")),
+    }
+}
+
 /// Entry point of `tarn work KIND`.
 pub fn main(kind: &str) -> ExitCode {
     let (file, dir) = match TaskFile::from_env() {
