@@ -706,11 +706,10 @@ fn outputs_that_are_symlinks_out_of_the_task_directory_are_refused_by_name() {
     }
 }
 
-/// Row (known problem): a worker that leaves a FIFO named `out/result.json` and exits
-/// 0. tarn opens it for reading and blocks until a writer appears, which never happens:
-/// the campaign hangs instead of failing the attempt.
+/// Row: a worker that leaves a FIFO named `out/result.json` and exits 0. Opening it
+/// would block until a writer appears, which never happens; tarn refuses any file that
+/// is not a regular file before opening it, and the attempt fails.
 #[test]
-#[ignore = "known: a FIFO as out/result.json blocks tarn forever (read_limited opens it without checking the file type)"]
 fn a_fifo_as_result_json_fails_the_attempt_instead_of_hanging() {
     let env = Env::new();
     let file = campaign(&env, "fifo", &Setup::default());

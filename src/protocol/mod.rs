@@ -229,6 +229,14 @@ pub fn read_result(task_dir: &Path, want: &Expectation) -> Result<ValidResult, R
         Some(rel) => {
             let path = resolve_inside(task_dir, rel)
                 .map_err(|m| ResultError::new(RESULT_PATH, "model", m))?;
+            let size = std::fs::metadata(&path).map(|m| m.len()).unwrap_or(0);
+            if size > MAX_ARRAY_BYTES {
+                return Err(ResultError::new(
+                    rel,
+                    "model",
+                    format!("file of {size} bytes exceeds the limit of {MAX_ARRAY_BYTES}"),
+                ));
+            }
             Some(
                 std::fs::read(&path)
                     .map_err(|e| ResultError::new(rel, "model", format!("cannot read: {e}")))?,
@@ -266,6 +274,10 @@ fn read_limited(path: &Path, max: u64) -> Result<String, String> {
     let meta = std::fs::symlink_metadata(path).map_err(|e| format!("cannot read: {e}"))?;
     if meta.file_type().is_symlink() {
         return Err("is a symbolic link; tarn reads only plain files the worker wrote".into());
+    }
+    if !meta.file_type().is_file() {
+        // A FIFO or device would block or stream forever when opened.
+        return Err("is not a regular file; tarn reads only plain files the worker wrote".into());
     }
     if meta.len() > max {
         return Err(format!(

@@ -134,10 +134,10 @@ impl FlowSpec {
                     "frame.n_particles must be >= 2 and frame.spatial_dim >= 1 (got {n_particles}, {spatial_dim})"
                 ));
             }
-            if n_particles * spatial_dim != self.data_dim {
+            if n_particles.checked_mul(spatial_dim) != Some(self.data_dim) {
                 return bad(format!(
                     "frame: n_particles * spatial_dim = {} but data_dim = {}",
-                    n_particles * spatial_dim,
+                    n_particles as u128 * spatial_dim as u128,
                     self.data_dim
                 ));
             }
