@@ -105,22 +105,12 @@ fn bare_spawns(task_dir: &Path, n: u32) -> anyhow::Result<f64> {
 /// spawns.
 fn prepare_bare_task(tmp: &Path, file: &Path, store: &crate::store::Store) -> anyhow::Result<()> {
     let c = Campaign::load(file).map_err(|e| anyhow::anyhow!("{e}"))?;
-    let task_dir = tmp.join("bare");
-    std::fs::create_dir_all(task_dir.join("in"))?;
-    std::fs::create_dir_all(task_dir.join("out"))?;
     let stage = &c.explore[0];
     let tref = inputs::TaskRef::new(&c, 1, 0, stage, 0);
     let prepared = inputs::prepare(store, &c, stage, &tref)?;
-    std::fs::write(
-        task_dir.join("in/start.npy"),
-        crate::protocol::npy::encode_f64(&prepared.inputs["start"]),
-    )?;
-    let task_json = serde_json::json!({
-        "protocol": 1, "task_id": tref.id, "campaign": c.name, "round": 1, "stage": stage.name,
-        "role": "explore", "kind": "hold", "walker": 0, "walkers": 1, "seed": tref.seed, "kT": c.kt,
-        "threads": 1, "system": c.system.table, "params": {}, "inputs": {"start": "in/start.npy"}, "model": null
-    });
-    std::fs::write(task_dir.join("task.json"), serde_json::to_vec(&task_json)?)?;
+    // The engine's own task-directory writer, so that the bare spawns see exactly what a
+    // worker sees.
+    engine::write_task_dir(&c, stage, &tref, &prepared, &tmp.join("bare"))?;
     Ok(())
 }
 

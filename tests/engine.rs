@@ -156,7 +156,6 @@ fn bad_workers_fail_clearly_and_resume_after_the_fix() {
             before,
             "mode {mode}: round 1 unchanged"
         );
-        assert!(!env.path().join("escaped.npy").exists() || *mode == "escape");
     }
 }
 

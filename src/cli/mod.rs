@@ -360,7 +360,7 @@ fn run_engine(campaign: Campaign, store: Store, opts: &RunOptions) -> Result<u8,
         .map_err(|e| Failure::input(format!("cannot start the runtime: {e}")))?;
     let name = campaign.name.clone();
     let end = rt.block_on(async {
-        let level = engine::install_signals(opts.quiet);
+        let level = engine::install_signals();
         engine::run(campaign, store, opts, level).await
     });
     rt.shutdown_timeout(std::time::Duration::from_secs(1));

@@ -205,7 +205,6 @@ fn catalogue_changes(
                 rec.energy, finder.id, origin.sample_index
             ),
         );
-        states.push(rec);
     }
     Ok(())
 }

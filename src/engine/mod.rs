@@ -226,7 +226,22 @@ pub async fn run(
         "started",
         format!("engine run {run_id} started (pid {})", std::process::id()),
     )?;
+    let watcher = {
+        let ctx = ctx.clone();
+        let mut level = ctx.level.clone();
+        tokio::spawn(async move {
+            while level.changed().await.is_ok() {
+                let now = *level.borrow();
+                if now > StopLevel::Run {
+                    ctx.monitor.emit(Event::StopRequested {
+                        hard: now == StopLevel::Now,
+                    });
+                }
+            }
+        })
+    };
     let end = round_loop(&ctx).await;
+    watcher.abort();
     let end = match end {
         Ok(e) => e,
         Err(e) => {
@@ -417,7 +432,8 @@ fn finish_round(ctx: &Ctx, round: u32, wall: Duration) -> Result<(), EngineError
             .collect();
         stages.push(totals);
     }
-    let previous: u64 = ctx.store.rounds()?.iter().map(|r| r.energy_evals).sum();
+    let mut rounds = ctx.store.rounds()?;
+    let previous: u64 = rounds.iter().map(|r| r.energy_evals).sum();
     let energy_evals: u64 = stages.iter().map(|s| s.energy_evals).sum();
     let new_states = states.iter().filter(|s| s.found.round == round).count() as u32;
     let mut rec = RoundRecord {
@@ -434,7 +450,6 @@ fn finish_round(ctx: &Ctx, round: u32, wall: Duration) -> Result<(), EngineError
         stop: None,
         cv_bins: coverage_bins(ctx, round)?,
     };
-    let mut rounds = ctx.store.rounds()?;
     rounds.push(rec.clone());
     rec.stop = stop::check(
         &ctx.campaign.stop,
@@ -493,13 +508,10 @@ fn coverage_bins(ctx: &Ctx, round: u32) -> Result<Vec<u32>, EngineError> {
 /// Publishes the read side's tables so that `rounds` and `states` work while running,
 /// and refreshes the campaign report (`report.html`, written then renamed).
 fn write_tables(ctx: &Ctx) {
-    let report = ctx.dir.join("report.html");
-    let tmp = ctx.dir.join("report.html.tmp");
-    match crate::report::html::write_report(&ctx.store, &tmp)
-        .and_then(|_| Ok(std::fs::rename(&tmp, &report)?))
-    {
-        Ok(()) => {}
-        Err(e) => tracing::warn!(error = %e, "cannot refresh report.html"),
+    // write_report writes a temporary file and renames it, so a browser never sees a
+    // half-written page.
+    if let Err(e) = crate::report::html::write_report(&ctx.store, &ctx.dir.join("report.html")) {
+        tracing::warn!(error = %e, "cannot refresh report.html");
     }
     let tables = crate::report::tables(&ctx.store);
     match tables {
@@ -550,7 +562,7 @@ async fn run_task_inner(
             .join(format!("r{:04}", task.round))
             .join(format!("{}.w{:03}", stage.name, task.walker))
             .join(format!("a{number}"));
-        write_task_dir(ctx, stage, task, &prepared, &attempt_dir).map_err(|e| {
+        write_task_dir(&ctx.campaign, stage, task, &prepared, &attempt_dir).map_err(|e| {
             EngineError::Io(format!(
                 "{}: cannot prepare the task directory: {e}",
                 attempt_dir.display()
@@ -763,8 +775,8 @@ fn describe_exit(exit: &Exit, o: &Outcome, timeout: f64) -> String {
 }
 
 /// Writes `task.json` and the input arrays into a fresh attempt directory.
-fn write_task_dir(
-    ctx: &Ctx,
+pub fn write_task_dir(
+    campaign: &Campaign,
     stage: &Stage,
     task: &TaskRef,
     prepared: &Prepared,
@@ -791,7 +803,7 @@ fn write_task_dir(
     let file = TaskFile {
         protocol: PROTOCOL_VERSION,
         task_id: task.id.clone(),
-        campaign: ctx.campaign.name.clone(),
+        campaign: campaign.name.clone(),
         round: task.round,
         stage: stage.name.clone(),
         role: stage.role,
@@ -799,9 +811,9 @@ fn write_task_dir(
         walker: task.walker,
         walkers: stage.walkers,
         seed: task.seed,
-        kt: ctx.campaign.kt,
-        threads: ctx.campaign.executor.threads_per_task,
-        system: ctx.campaign.system.table.clone(),
+        kt: campaign.kt,
+        threads: campaign.executor.threads_per_task,
+        system: campaign.system.table.clone(),
         params: stage.params.clone(),
         inputs: rel,
         model,
@@ -877,7 +889,9 @@ pub fn resolve_command(worker: &Worker, exe: &Path, base: &Path) -> (PathBuf, Ve
 
 /// Installs the signal handlers: the first Ctrl-C asks to stop after running tasks, the
 /// second (or SIGTERM, as a batch system sends at its time limit) ends them now.
-pub fn install_signals(monitor_quiet: bool) -> watch::Receiver<StopLevel> {
+/// The engine tells the user through its monitor (see [`run`]), so that the message sits
+/// above the progress view and lands in the status snapshot.
+pub fn install_signals() -> watch::Receiver<StopLevel> {
     let (tx, rx) = watch::channel(StopLevel::Run);
     tokio::spawn(async move {
         let mut term =
@@ -892,16 +906,6 @@ pub fn install_signals(monitor_quiet: bool) -> watch::Receiver<StopLevel> {
             } else {
                 StopLevel::AfterRunning
             };
-            if !monitor_quiet {
-                eprintln!(
-                    "{}",
-                    if hard {
-                        "tarn: ending running workers now; the campaign stays resumable"
-                    } else {
-                        "tarn: interrupt — finishing running tasks, then stopping (Ctrl-C again ends them now)"
-                    }
-                );
-            }
             let _ = tx.send(level);
         }
     });

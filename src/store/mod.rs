@@ -507,11 +507,6 @@ impl Store {
         }
     }
 
-    /// Removes a key (used to clear the finished mark when a campaign is extended).
-    pub fn remove_in(b: &mut Batch, key: Vec<u8>) {
-        b.inner.remove(key);
-    }
-
     /// Size of the database on disk, in bytes.
     pub fn size_on_disk(&self) -> u64 {
         self.db.size_on_disk().unwrap_or(0)

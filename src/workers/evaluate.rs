@@ -15,8 +15,6 @@ use super::states::{assign_by_quench, free_energy_arrays, Matching};
 use super::{rng, Output, Task};
 use crate::flow::{generate, Flow};
 use crate::physics::cv::CollectiveVariable;
-use crate::physics::fingerprint::StateTolerance;
-use crate::physics::quench::FireParams;
 use crate::physics::{EnergyModel, SystemSpec};
 use crate::protocol::Array;
 use crate::stats::{
@@ -53,15 +51,14 @@ struct ProfileParams {
 
 impl Default for ReweightParams {
     fn default() -> Self {
-        let tol = StateTolerance::default();
-        let fire = FireParams::default();
+        let m = Matching::default();
         ReweightParams {
             n_samples: 2000,
             bootstrap: 400,
-            force_tolerance: fire.force_tolerance,
-            max_steps: fire.max_steps,
-            energy_tolerance: tol.energy,
-            fingerprint_tolerance: tol.fingerprint,
+            force_tolerance: m.force_tolerance,
+            max_steps: m.max_steps,
+            energy_tolerance: m.energy_tolerance,
+            fingerprint_tolerance: m.fingerprint_tolerance,
             profile: None,
         }
     }
