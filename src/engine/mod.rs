@@ -94,17 +94,17 @@ pub fn open_for_run(
         path: path.display().to_string(),
         accepted_unix: now_unix(),
     };
-    if !Store::exists(&dir) {
-        let meta = Meta {
-            v: SCHEMA_VERSION,
-            campaign: campaign.name.clone(),
-            created_unix: now_unix(),
-            tarn_version: env!("CARGO_PKG_VERSION").into(),
-            base_dir: campaign.base_dir.display().to_string(),
-        };
-        return Ok(Store::create(&dir, &meta, &version(0))?);
+    let meta = Meta {
+        v: SCHEMA_VERSION,
+        campaign: campaign.name.clone(),
+        created_unix: now_unix(),
+        tarn_version: env!("CARGO_PKG_VERSION").into(),
+        base_dir: campaign.base_dir.display().to_string(),
+    };
+    let (store, created) = Store::open_or_create(&dir, &meta, &version(0))?;
+    if created {
+        return Ok(store);
     }
-    let store = Store::open(&dir)?;
     let current = store.current_campaign()?;
     if current.hash != campaign.source_hash {
         if !opts.accept_change {

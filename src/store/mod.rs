@@ -226,6 +226,45 @@ impl Store {
         })?;
         let db = Store::open_db(dir)?;
         let store = Store::wrap(db, dir)?;
+        store.initialise(meta, first)?;
+        Ok(store)
+    }
+
+    /// Opens the store of a campaign directory, creating it when it does not exist yet.
+    /// The lock is taken before anything is decided, so that two processes starting the
+    /// same new campaign at once cannot both create it: the second one is refused as
+    /// `Locked`. A database with no schema record and no other record (a creation cut
+    /// short) is initialised; one with records but no schema is refused as damaged.
+    /// Returns the store and whether it was created now.
+    pub fn open_or_create(
+        dir: &Path,
+        meta: &Meta,
+        first: &CampaignVersion,
+    ) -> Result<(Store, bool), StoreError> {
+        std::fs::create_dir_all(dir).map_err(|e| StoreError::Sled {
+            path: dir.display().to_string(),
+            source: sled::Error::Io(e),
+        })?;
+        let db = Store::open_db(dir)?;
+        let path = dir.display().to_string();
+        let has_schema = db
+            .get(b"mschema")
+            .map_err(|e| StoreError::Sled {
+                path: path.clone(),
+                source: e,
+            })?
+            .is_some();
+        if has_schema || !db.is_empty() {
+            drop(db);
+            return Store::open(dir).map(|s| (s, false));
+        }
+        let store = Store::wrap(db, dir)?;
+        store.initialise(meta, first)?;
+        Ok((store, true))
+    }
+
+    /// Writes the first records of a new store in one batch.
+    fn initialise(&self, meta: &Meta, first: &CampaignVersion) -> Result<(), StoreError> {
         let mut b = Batch::default();
         b.inner
             .insert(b"mschema".to_vec(), SCHEMA_VERSION.to_be_bytes().to_vec());
@@ -236,11 +275,10 @@ impl Store {
             format!(
                 "campaign {} created (file hash {})",
                 meta.campaign,
-                &first.hash[..12]
+                &first.hash[..first.hash.len().min(12)]
             ),
         );
-        store.apply(b)?;
-        Ok(store)
+        self.apply(b)
     }
 
     /// Opens an existing store, refusing one of another schema version.
