@@ -268,7 +268,7 @@ fn dispatch(cli: &Cli) -> Result<u8, Failure> {
         }
         Command::Report { name, out } => {
             let dir = engine::campaign_dir(&cli.state, name);
-            match Store::open(&dir) {
+            match Store::open_read_only(&dir) {
                 Ok(store) => report::html::write_report(&store, out)?,
                 Err(StoreError::Locked { .. }) => {
                     let live = dir.join("report.html");
@@ -389,7 +389,7 @@ fn open_store(state: &Path, name: &str) -> Result<Store, Failure> {
             state.display()
         )));
     }
-    Ok(Store::open(&dir)?)
+    Ok(Store::open_read_only(&dir)?)
 }
 
 /// The read tables: from the store when it is free, from the running engine's published
@@ -402,7 +402,7 @@ fn read_tables(state: &Path, name: &str) -> Result<Tables, Failure> {
             state.display()
         )));
     }
-    match Store::open(&dir) {
+    match Store::open_read_only(&dir) {
         Ok(store) => Ok(report::tables(&store)?),
         Err(StoreError::Locked { .. }) => {
             let text = std::fs::read_to_string(snapshot::tables_path(&dir)).map_err(|_| Failure::input("the campaign is running and has not published its tables yet; try again after its first round"))?;
@@ -437,7 +437,7 @@ fn cmd_status(state: &Path, name: &str, json: bool) -> Result<u8, Failure> {
         )));
     }
     let snap = snapshot::read(&dir);
-    let (running, tables) = match Store::open(&dir) {
+    let (running, tables) = match Store::open_read_only(&dir) {
         Ok(store) => (false, Some(report::tables(&store)?)),
         Err(StoreError::Locked { .. }) => (true, None),
         Err(e) => return Err(e.into()),

@@ -22,10 +22,25 @@
 //! values per task, not a key per sample. A task's outputs, its record, the states it
 //! changes and its event go into one [`sled::Batch`], applied atomically and flushed
 //! before the task counts as done.
+//!
+//! # Damage and read-only access
+//! sled's recovery, run by every open, treats the first damaged record of its log as
+//! the end of the log and cuts the store back to it. tarn therefore never lets sled
+//! open a store it has not checked first: every commit also raises a commit counter
+//! (key `mcommits`, in the same batch) and, once flushed, records that count in
+//! [`COMMIT_FILE`] beside the database. Opening a store copies the database to a
+//! private temporary directory, lets sled recover the copy, reads every record of it
+//! and compares its counter with the recorded one; a store that lost a committed
+//! batch, or whose records cannot be read, is refused with [`StoreError::Damaged`]
+//! and the original files are left exactly as they were. Read commands
+//! ([`Store::open_read_only`]) then work on that copy, so they never write to the
+//! store at all; the engine ([`Store::open`]) opens the original once the copy passed.
 
 pub mod records;
 
 use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::Mutex;
 use std::time::{SystemTime, UNIX_EPOCH};
 
 use serde::de::DeserializeOwned;
@@ -44,6 +59,15 @@ pub const CHUNK: usize = 4 << 20;
 /// access pattern (a round's arrays are read once).
 pub const CACHE_BYTES: u64 = 64 << 20;
 
+/// The file in the campaign directory, beside `db/`, where tarn records how many
+/// batches it has committed and flushed (written through a temporary file and a
+/// rename after every flush). It can only lag the store, never lead it: a store that
+/// holds fewer commits than this file says has lost committed data.
+pub const COMMIT_FILE: &str = "commits.json";
+
+/// The store key of the commit counter, raised in every batch.
+const COMMITS_KEY: &[u8] = b"mcommits";
+
 /// Why the store could not do what was asked.
 #[derive(Debug, thiserror::Error)]
 pub enum StoreError {
@@ -61,14 +85,40 @@ pub enum StoreError {
     },
     #[error("store {path} does not exist")]
     Missing { path: String },
+    #[error("store {path}: {file} is damaged ({detail}); tarn refused to open the store and did not change it (sled's recovery would cut it back to the damage). Restore the campaign directory from a backup, or move it aside and start the campaign again")]
+    Damaged {
+        path: String,
+        file: String,
+        detail: String,
+    },
+    #[error("store {path} was opened read-only (a private copy for a read command) and cannot be written")]
+    ReadOnly { path: String },
 }
 
 /// An open campaign store.
 pub struct Store {
+    // Declared first so that it is dropped (closed) before `_copy` removes the files
+    // of a read-only copy.
     db: sled::Db,
     dir: PathBuf,
-    next_seq: std::sync::atomic::AtomicU64,
+    next_seq: AtomicU64,
     host: String,
+    /// The commit counter as it stands in the database; guarded by `commit`.
+    commits: AtomicU64,
+    /// Serialises commits, so that the counter in the store rises with every batch in
+    /// the order the batches are applied.
+    commit: Mutex<()>,
+    /// The private copy a read-only store works on (removed when the store drops).
+    _copy: Option<CopyDir>,
+}
+
+/// A temporary directory holding a private copy of a database, removed on drop.
+struct CopyDir(PathBuf);
+
+impl Drop for CopyDir {
+    fn drop(&mut self) {
+        let _ = std::fs::remove_dir_all(&self.0);
+    }
 }
 
 /// Key builders; see the layout table in the module doc.
@@ -195,9 +245,14 @@ impl Store {
     }
 
     fn open_db(dir: &Path) -> Result<sled::Db, StoreError> {
-        let path = Store::db_path(dir);
+        Store::open_db_at(&Store::db_path(dir), dir)
+    }
+
+    /// Opens the sled database at `path`; `dir` is the campaign directory whose
+    /// holder a lock refusal names.
+    fn open_db_at(path: &Path, dir: &Path) -> Result<sled::Db, StoreError> {
         sled::Config::new()
-            .path(&path)
+            .path(path)
             .cache_capacity(CACHE_BYTES)
             .mode(sled::Mode::LowSpace)
             .open()
@@ -206,16 +261,40 @@ impl Store {
                     if io.kind() == std::io::ErrorKind::WouldBlock
                         || io.to_string().contains("lock") =>
                 {
-                    StoreError::Locked {
-                        path: path.display().to_string(),
-                        holder: crate::engine::snapshot::holder_text(dir),
-                    }
+                    Store::locked(dir)
                 }
                 other => StoreError::Sled {
                     path: path.display().to_string(),
                     source: other,
                 },
             })
+    }
+
+    fn locked(dir: &Path) -> StoreError {
+        StoreError::Locked {
+            path: Store::db_path(dir).display().to_string(),
+            holder: crate::engine::snapshot::holder_text(dir),
+        }
+    }
+
+    /// Refuses with [`StoreError::Locked`] when another process holds the database's
+    /// lock (sled takes an exclusive `flock` on its `db` file). The probe takes and
+    /// releases the same lock on a read-only handle, so it writes nothing.
+    fn probe_lock(dir: &Path) -> Result<(), StoreError> {
+        use nix::fcntl::{Flock, FlockArg};
+        let file = Store::db_path(dir).join("db");
+        let Ok(handle) = std::fs::File::open(&file) else {
+            // No log file yet (or unreadable): sled's own open reports it.
+            return Ok(());
+        };
+        match Flock::lock(handle, FlockArg::LockExclusiveNonblock) {
+            Ok(lock) => {
+                drop(lock);
+                Ok(())
+            }
+            Err((_, nix::errno::Errno::EWOULDBLOCK)) => Err(Store::locked(dir)),
+            Err(_) => Ok(()),
+        }
     }
 
     /// Creates a new store for a campaign; fails if one exists.
@@ -225,22 +304,26 @@ impl Store {
             source: sled::Error::Io(e),
         })?;
         let db = Store::open_db(dir)?;
-        let store = Store::wrap(db, dir)?;
+        let store = Store::wrap(db, dir, None)?;
         store.initialise(meta, first)?;
         Ok(store)
     }
 
     /// Opens the store of a campaign directory, creating it when it does not exist yet.
-    /// The lock is taken before anything is decided, so that two processes starting the
-    /// same new campaign at once cannot both create it: the second one is refused as
-    /// `Locked`. A database with no schema record and no other record (a creation cut
-    /// short) is initialised; one with records but no schema is refused as damaged.
-    /// Returns the store and whether it was created now.
+    /// An existing store goes through [`Store::open`] (checked before sled touches it).
+    /// For a new one the lock is taken before anything is decided, so that two
+    /// processes starting the same new campaign at once cannot both create it: the
+    /// second one is refused as `Locked`. A database with no schema record and no other
+    /// record (a creation cut short) is initialised; one with records but no schema is
+    /// refused as damaged. Returns the store and whether it was created now.
     pub fn open_or_create(
         dir: &Path,
         meta: &Meta,
         first: &CampaignVersion,
     ) -> Result<(Store, bool), StoreError> {
+        if Store::exists(dir) {
+            return Store::open(dir).map(|s| (s, false));
+        }
         std::fs::create_dir_all(dir).map_err(|e| StoreError::Sled {
             path: dir.display().to_string(),
             source: sled::Error::Io(e),
@@ -258,7 +341,7 @@ impl Store {
             drop(db);
             return Store::open(dir).map(|s| (s, false));
         }
-        let store = Store::wrap(db, dir)?;
+        let store = Store::wrap(db, dir, None)?;
         store.initialise(meta, first)?;
         Ok((store, true))
     }
@@ -281,14 +364,136 @@ impl Store {
         self.apply(b)
     }
 
-    /// Opens an existing store, refusing one of another schema version.
+    /// Opens an existing store for writing (the engine's open). The store is checked
+    /// on a private copy first (see the module doc): a damaged store is refused before
+    /// sled's recovery can cut it back, and one of another schema version is refused.
     pub fn open(dir: &Path) -> Result<Store, StoreError> {
+        // The copy is checked and dropped; then the original is opened.
+        drop(Store::open_read_only(dir)?);
+        let db = Store::open_db(dir)?;
+        Store::check_schema(&db, dir)?;
+        let store = Store::wrap(db, dir, None)?;
+        // The original recovers to what the copy recovered to; check the counter once
+        // more in case the files changed in between (another tarn ran meanwhile).
+        store.check_commits()?;
+        Ok(store)
+    }
+
+    /// Opens an existing store for reading only, for the read commands (`status`,
+    /// `rounds`, `states`, `export`, `report`, `digest`). The database is copied to a
+    /// private temporary directory (`TMPDIR`) and the copy is opened, checked and read;
+    /// the store's own files are never written, not even by sled's recovery. A store
+    /// in use by a running campaign is refused as [`StoreError::Locked`] (its published
+    /// snapshot files are the way to read it then). Writes to the returned store fail
+    /// with [`StoreError::ReadOnly`].
+    pub fn open_read_only(dir: &Path) -> Result<Store, StoreError> {
         if !Store::exists(dir) {
             return Err(StoreError::Missing {
                 path: dir.display().to_string(),
             });
         }
-        let db = Store::open_db(dir)?;
+        Store::probe_lock(dir)?;
+        let copy = Store::copy_db(dir)?;
+        // A campaign that started while the files were copied may have left the copy
+        // torn between two of its writes: treat the store as in use, which it is.
+        Store::probe_lock(dir)?;
+        let path = Store::db_path(dir);
+        let db = Store::open_db_at(&copy.0.join("db"), dir).map_err(|e| match e {
+            StoreError::Sled { source, .. } => StoreError::Damaged {
+                path: path.display().to_string(),
+                file: path.join("db").display().to_string(),
+                detail: match source {
+                    sled::Error::Corruption { .. } => {
+                        "sled's recovery found corrupted data in it".to_string()
+                    }
+                    other => format!("sled cannot recover it: {other}"),
+                },
+            },
+            other => other,
+        })?;
+        Store::read_every_record(&db, dir)?;
+        Store::check_schema(&db, dir)?;
+        let store = Store::wrap(db, dir, Some(copy))?;
+        store.check_commits()?;
+        Ok(store)
+    }
+
+    /// Copies the database directory of `dir` to a new private temporary directory.
+    fn copy_db(dir: &Path) -> Result<CopyDir, StoreError> {
+        let io = |what: &Path, e: std::io::Error| StoreError::Sled {
+            path: what.display().to_string(),
+            source: sled::Error::Io(e),
+        };
+        Store::remove_stale_copies();
+        static NEXT: AtomicU64 = AtomicU64::new(0);
+        let nanos = SystemTime::now()
+            .duration_since(UNIX_EPOCH)
+            .map(|d| d.subsec_nanos())
+            .unwrap_or(0);
+        let root = std::env::temp_dir().join(format!(
+            "tarn-read-{}-{nanos}-{}",
+            std::process::id(),
+            NEXT.fetch_add(1, Ordering::Relaxed)
+        ));
+        std::fs::create_dir(&root).map_err(|e| io(&root, e))?;
+        let copy = CopyDir(root);
+        let mut stack = vec![(Store::db_path(dir), copy.0.join("db"))];
+        while let Some((from, to)) = stack.pop() {
+            std::fs::create_dir_all(&to).map_err(|e| io(&to, e))?;
+            for entry in std::fs::read_dir(&from).map_err(|e| io(&from, e))? {
+                let entry = entry.map_err(|e| io(&from, e))?;
+                let (src, dst) = (entry.path(), to.join(entry.file_name()));
+                let kind = entry.file_type().map_err(|e| io(&src, e))?;
+                if kind.is_dir() {
+                    stack.push((src, dst));
+                } else if kind.is_file() {
+                    std::fs::copy(&src, &dst).map_err(|e| io(&src, e))?;
+                }
+            }
+        }
+        Ok(copy)
+    }
+
+    /// Removes the copies that tarn processes which no longer run left behind (a read
+    /// command killed mid-way cannot remove its own).
+    fn remove_stale_copies() {
+        let Ok(entries) = std::fs::read_dir(std::env::temp_dir()) else {
+            return;
+        };
+        for entry in entries.flatten() {
+            let name = entry.file_name();
+            let Some(pid) = name
+                .to_str()
+                .and_then(|n| n.strip_prefix("tarn-read-"))
+                .and_then(|rest| rest.split('-').next())
+                .and_then(|p| p.parse::<i32>().ok())
+            else {
+                continue;
+            };
+            let gone = nix::sys::signal::kill(nix::unistd::Pid::from_raw(pid), None)
+                == Err(nix::errno::Errno::ESRCH);
+            if gone {
+                let _ = std::fs::remove_dir_all(entry.path());
+            }
+        }
+    }
+
+    /// Reads every key and value once, so that damage sled's recovery did not notice
+    /// (a record in an older part of the log) is found now rather than mid-campaign.
+    fn read_every_record(db: &sled::Db, dir: &Path) -> Result<(), StoreError> {
+        let path = Store::db_path(dir);
+        for kv in db.iter() {
+            kv.map_err(|e| StoreError::Damaged {
+                path: path.display().to_string(),
+                file: path.join("db").display().to_string(),
+                detail: format!("a record cannot be read: {e}"),
+            })?;
+        }
+        Ok(())
+    }
+
+    /// Refuses a database without a schema record or of another schema version.
+    fn check_schema(db: &sled::Db, dir: &Path) -> Result<(), StoreError> {
         let path = dir.display().to_string();
         let schema = db
             .get(b"mschema")
@@ -311,29 +516,103 @@ impl Store {
         if found != SCHEMA_VERSION {
             return Err(StoreError::Schema { path, found });
         }
-        Store::wrap(db, dir)
+        Ok(())
     }
 
-    fn wrap(db: sled::Db, dir: &Path) -> Result<Store, StoreError> {
+    /// The number of flushed commits recorded in [`COMMIT_FILE`], if the file exists
+    /// (stores written before the file existed have none, and are not checked).
+    fn recorded_commits(dir: &Path) -> Result<Option<u64>, StoreError> {
+        let file = dir.join(COMMIT_FILE);
+        let text = match std::fs::read_to_string(&file) {
+            Ok(t) => t,
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(None),
+            Err(e) => {
+                return Err(StoreError::Sled {
+                    path: file.display().to_string(),
+                    source: sled::Error::Io(e),
+                })
+            }
+        };
+        serde_json::from_str::<serde_json::Value>(&text)
+            .ok()
+            .and_then(|v| v.get("commits").and_then(|c| c.as_u64()))
+            .map(Some)
+            .ok_or_else(|| StoreError::Damaged {
+                path: Store::db_path(dir).display().to_string(),
+                file: file.display().to_string(),
+                detail: "it does not hold a commit count".into(),
+            })
+    }
+
+    /// Refuses the store when it holds fewer commits than tarn recorded as flushed.
+    fn check_commits(&self) -> Result<(), StoreError> {
+        let Some(recorded) = Store::recorded_commits(&self.dir)? else {
+            return Ok(());
+        };
+        let found = self.commits.load(Ordering::SeqCst);
+        if found < recorded {
+            let path = Store::db_path(&self.dir);
+            return Err(StoreError::Damaged {
+                path: path.display().to_string(),
+                file: path.join("db").display().to_string(),
+                detail: format!(
+                    "it holds {found} committed batches, but {} records {recorded}: sled's recovery stopped at damaged data and would drop the rest",
+                    self.dir.join(COMMIT_FILE).display()
+                ),
+            });
+        }
+        Ok(())
+    }
+
+    /// Records the flushed commit count beside the database (temporary file, then a
+    /// rename). A failure (the disk is full) only weakens the next damage check — the
+    /// batch itself is committed — so it is logged, not returned.
+    fn record_commits(&self, commits: u64) {
+        let file = self.dir.join(COMMIT_FILE);
+        let tmp = self.dir.join(format!("{COMMIT_FILE}.tmp"));
+        let text = serde_json::json!({"v": SCHEMA_VERSION, "commits": commits}).to_string();
+        let written = std::fs::write(&tmp, text).and_then(|_| std::fs::rename(&tmp, &file));
+        if let Err(e) = written {
+            let _ = std::fs::remove_file(&tmp);
+            tracing::warn!("cannot record the commit count in {}: {e}", file.display());
+        }
+    }
+
+    fn wrap(db: sled::Db, dir: &Path, copy: Option<CopyDir>) -> Result<Store, StoreError> {
+        let sled_err = |e| StoreError::Sled {
+            path: dir.display().to_string(),
+            source: e,
+        };
         let last = db
             .scan_prefix(b"e")
             .keys()
             .next_back()
             .transpose()
-            .map_err(|e| StoreError::Sled {
-                path: dir.display().to_string(),
-                source: e,
-            })?;
+            .map_err(sled_err)?;
         let next = last
             .and_then(|k| <[u8; 8]>::try_from(&k[1..]).ok())
             .map(|b| u64::from_be_bytes(b) + 1)
             .unwrap_or(0);
+        let commits = db
+            .get(COMMITS_KEY)
+            .map_err(sled_err)?
+            .and_then(|v| <[u8; 8]>::try_from(v.as_ref()).ok())
+            .map(u64::from_be_bytes)
+            .unwrap_or(0);
         Ok(Store {
             db,
             dir: dir.to_path_buf(),
-            next_seq: std::sync::atomic::AtomicU64::new(next),
+            next_seq: AtomicU64::new(next),
             host: host_name(),
+            commits: AtomicU64::new(commits),
+            commit: Mutex::new(()),
+            _copy: copy,
         })
+    }
+
+    /// Whether this store is a read-only copy.
+    pub fn is_read_only(&self) -> bool {
+        self._copy.is_some()
     }
 
     /// The campaign directory.
@@ -351,9 +630,7 @@ impl Store {
     /// Applies a batch atomically and flushes it to disk.
     pub fn apply(&self, mut batch: Batch) -> Result<(), StoreError> {
         for (kind, message) in std::mem::take(&mut batch.events) {
-            let seq = self
-                .next_seq
-                .fetch_add(1, std::sync::atomic::Ordering::SeqCst);
+            let seq = self.next_seq.fetch_add(1, Ordering::SeqCst);
             let ev = EventRecord {
                 v: SCHEMA_VERSION,
                 seq,
@@ -365,10 +642,23 @@ impl Store {
             };
             batch.put(keys::event(seq), &ev);
         }
+        if self.is_read_only() {
+            return Err(StoreError::ReadOnly {
+                path: Store::db_path(&self.dir).display().to_string(),
+            });
+        }
+        // One commit at a time, so that the counter rises in the order of the batches.
+        let _turn = self.commit.lock().unwrap_or_else(|p| p.into_inner());
+        let commits = self.commits.load(Ordering::SeqCst) + 1;
+        batch
+            .inner
+            .insert(COMMITS_KEY.to_vec(), commits.to_be_bytes().to_vec());
         self.db
             .apply_batch(batch.inner)
             .map_err(|e| self.sled_err(e))?;
         self.db.flush().map_err(|e| self.sled_err(e))?;
+        self.commits.store(commits, Ordering::SeqCst);
+        self.record_commits(commits);
         Ok(())
     }
 
@@ -711,6 +1001,62 @@ mod tests {
         s.apply(b).unwrap();
         assert_eq!(s.array(&key, "samples").unwrap().unwrap(), a);
         assert_eq!(s.array(&key, "energies").unwrap(), None);
+    }
+
+    #[test]
+    fn a_store_holding_fewer_commits_than_recorded_is_refused_untouched() {
+        let dir = tempfile::tempdir().unwrap();
+        {
+            let s = Store::create(dir.path(), &meta(), &version()).unwrap();
+            s.log_event("a", "one").unwrap();
+        }
+        let recorded = std::fs::read_to_string(dir.path().join(COMMIT_FILE)).unwrap();
+        assert!(recorded.contains("\"commits\":2"), "{recorded}");
+        // What a store cut back by sled's recovery looks like: the file beside it
+        // records more flushed commits than the database holds.
+        std::fs::write(dir.path().join(COMMIT_FILE), r#"{"v":1,"commits":5}"#).unwrap();
+        let db_file = dir.path().join("db/db");
+        let before = std::fs::read(&db_file).unwrap();
+        for open in [Store::open, Store::open_read_only] {
+            let err = open(dir.path()).err().expect("refused");
+            let shown = err.to_string();
+            assert!(matches!(err, StoreError::Damaged { .. }), "{shown}");
+            assert!(
+                shown.contains(&format!("{} is damaged", db_file.display()))
+                    && shown.contains("holds 2 committed batches")
+                    && shown.contains("records 5"),
+                "{shown}"
+            );
+            assert_eq!(std::fs::read(&db_file).unwrap(), before);
+        }
+    }
+
+    #[test]
+    fn a_read_only_store_reads_a_copy_and_refuses_writes() {
+        let dir = tempfile::tempdir().unwrap();
+        drop(Store::create(dir.path(), &meta(), &version()).unwrap());
+        let s = Store::open_read_only(dir.path()).unwrap();
+        assert!(s.is_read_only());
+        assert_eq!(s.meta().unwrap(), meta());
+        let err = s.log_event("a", "one").expect_err("read-only");
+        assert!(matches!(err, StoreError::ReadOnly { .. }), "{err}");
+        // The copy holds no lock on the original, so the engine can open it meanwhile.
+        let w = Store::open(dir.path()).unwrap();
+        w.log_event("b", "two").unwrap();
+        assert_eq!(w.events().unwrap().len(), 2);
+        assert_eq!(s.events().unwrap().len(), 1);
+        // The original is locked by the writer: a read-only open is refused as locked.
+        let locked = Store::open_read_only(dir.path()).err().expect("locked");
+        assert!(matches!(locked, StoreError::Locked { .. }), "{locked}");
+    }
+
+    #[test]
+    fn a_store_without_a_commit_file_is_accepted() {
+        let dir = tempfile::tempdir().unwrap();
+        drop(Store::create(dir.path(), &meta(), &version()).unwrap());
+        std::fs::remove_file(dir.path().join(COMMIT_FILE)).unwrap();
+        let s = Store::open(dir.path()).unwrap();
+        assert_eq!(s.events().unwrap().len(), 1);
     }
 
     #[test]
