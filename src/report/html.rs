@@ -3,7 +3,9 @@
 //! Owns: what the report page shows and how it reads the store for it — the header
 //! (campaign, system, kT, seed, file hash, tarn version, status), the caution, the
 //! discovery timeline, free energies by round, the ESS fraction, the sample landscape of
-//! 2-D systems, the 1-D profile, the catalogue and the rounds table. Must not touch: the
+//! 2-D systems (for a molecule whose dedup fingerprint is made of dihedrals, the
+//! Ramachandran scatter of its first two instead), the 1-D profile, the catalogue and
+//! the rounds table. Must not touch: the
 //! engine's control flow or the store's content; it only reads, and writes the one
 //! output file (through a temporary file and a rename, so that a browser that reloads
 //! the page while the engine refreshes it never sees half a file).
@@ -25,6 +27,8 @@ use std::path::Path;
 use anyhow::Context as _;
 
 use super::plots::{self, Axes, Grid, Landscape, ProfileData, StateTrack};
+use crate::physics::cv::dihedral_degrees;
+use crate::physics::fingerprint::Fingerprint;
 use crate::physics::SystemSpec;
 use crate::protocol::Role;
 use crate::spec::Campaign;
@@ -638,12 +642,18 @@ fn ess_section(c: &Context) -> anyhow::Result<String> {
     Ok(out)
 }
 
+/// A map from one configuration (a row of `dim` coordinates) to its point in a plot.
+type Projection<'a> = &'a dyn Fn(&[f64]) -> (f64, f64);
+
 /// Explore samples for the landscape: at most [`MAX_LANDSCAPE_ROUNDS`] rounds spread over
 /// the campaign, at most [`MAX_TASKS_PER_ROUND`] explore tasks of each, and evenly
-/// strided samples of each task, [`MAX_LANDSCAPE_POINTS`] in all.
+/// strided samples of each task, [`MAX_LANDSCAPE_POINTS`] in all, each row of `dim`
+/// coordinates mapped to a point by `project`.
 fn landscape_samples(
     store: &Store,
     rounds: &[RoundRecord],
+    dim: usize,
+    project: Projection,
 ) -> anyhow::Result<Vec<(f64, f64, u32)>> {
     let picked = plots::thin(rounds.len(), MAX_LANDSCAPE_ROUNDS);
     let per_round = MAX_LANDSCAPE_POINTS / picked.len().max(1);
@@ -658,7 +668,7 @@ fn landscape_samples(
                     && t.status == TaskStatus::Done
                     && t.arrays
                         .get("samples")
-                        .is_some_and(|s| s.len() == 2 && s[0] > 0 && s[1] == 2)
+                        .is_some_and(|s| s.len() == 2 && s[0] > 0 && s[1] == dim)
             })
             .collect();
         let chosen = plots::thin(tasks.len(), MAX_TASKS_PER_ROUND);
@@ -669,11 +679,11 @@ fn landscape_samples(
             let Some(a) = store.array(&key, "samples")? else {
                 continue;
             };
-            if a.shape.len() != 2 || a.shape[1] != 2 || a.data.len() != 2 * a.rows() {
+            if a.shape.len() != 2 || a.shape[1] != dim || a.data.len() != dim * a.rows() {
                 continue;
             }
             for i in plots::thin(a.rows(), per_task) {
-                let (x, y) = (a.data[2 * i], a.data[2 * i + 1]);
+                let (x, y) = project(&a.data[dim * i..dim * (i + 1)]);
                 if x.is_finite() && y.is_finite() {
                     out.push((x, y, round));
                 }
@@ -731,6 +741,11 @@ fn landscape_section(store: &Store, c: &Context) -> anyhow::Result<String> {
     let mut out =
         String::from("<section id=\"landscape\">\n<h2>Samples over the energy landscape</h2>\n");
     let dim = c.dim();
+    if let (Some(d), Some(pair)) = (dim, dihedral_pair(c)) {
+        if d != 2 {
+            return ramachandran_section(store, c, d, pair, out);
+        }
+    }
     if dim != Some(2) {
         let why = match dim {
             Some(d) => format!("This system has {d} coordinates; the sample map is drawn for two-dimensional systems only."),
@@ -743,7 +758,7 @@ fn landscape_section(store: &Store, c: &Context) -> anyhow::Result<String> {
         );
         return Ok(out);
     }
-    let samples = landscape_samples(store, &c.rounds)?;
+    let samples = landscape_samples(store, &c.rounds, 2, &|r| (r[0], r[1]))?;
     let minima: Vec<(u32, f64, f64)> = c
         .states
         .iter()
@@ -804,6 +819,90 @@ fn landscape_section(store: &Store, c: &Context) -> anyhow::Result<String> {
             "plot-landscape",
             &svg,
             "explore samples coloured by round over energy contours",
+            &escape(&caption),
+            empty,
+        )
+        .replacen("class=\"plot\"", "class=\"plot wide\"", 1),
+    );
+    let _ = writeln!(
+        out,
+        "<div class=\"ramp\" style=\"background:{}\"></div><div class=\"ramp-labels\"><span>round {r0}</span><span>colour = round</span><span>round {r1}</span></div>",
+        plots::round_ramp_css()
+    );
+    out.push_str("</section>\n");
+    Ok(out)
+}
+
+/// The first two dihedrals of the dedup stage's fingerprint, when it is a dihedral
+/// fingerprint (a molecule's φ, ψ), valid for the system's dimension.
+fn dihedral_pair(c: &Context) -> Option<[[usize; 4]; 2]> {
+    let campaign = c.campaign.as_ref().ok()?;
+    let fp = campaign.dedup.params.get("fingerprint")?;
+    let fp: Fingerprint = serde_json::from_value(fp.clone()).ok()?;
+    fp.validate(campaign.system.dim).ok()?;
+    match fp {
+        Fingerprint::Dihedrals { dihedrals } if dihedrals.len() >= 2 => {
+            Some([dihedrals[0], dihedrals[1]])
+        }
+        _ => None,
+    }
+}
+
+/// The Ramachandran scatter of a molecule: thinned explore samples at their first two
+/// fingerprint dihedrals (φ, ψ in degrees), coloured by round, with the catalogue's
+/// minima; drawn in place of the 2-D landscape.
+fn ramachandran_section(
+    store: &Store,
+    c: &Context,
+    dim: usize,
+    pair: [[usize; 4]; 2],
+    mut out: String,
+) -> anyhow::Result<String> {
+    let project = |r: &[f64]| (dihedral_degrees(r, pair[0]), dihedral_degrees(r, pair[1]));
+    let samples = landscape_samples(store, &c.rounds, dim, &project)?;
+    let minima: Vec<(u32, f64, f64)> = c
+        .states
+        .iter()
+        .filter(|s| s.representative.len() == dim)
+        .map(|s| {
+            let (x, y) = project(&s.representative);
+            (s.id, x, y)
+        })
+        .collect();
+    let r0 = c.rounds.first().map_or(1, |r| r.round);
+    let r1 = c.rounds.last().map_or(1, |r| r.round);
+    let name = |d: [usize; 4]| format!("dihedral({},{},{},{}) (degrees)", d[0], d[1], d[2], d[3]);
+    let (x_label, y_label) = (
+        format!("φ = {}", name(pair[0])),
+        format!("ψ = {}", name(pair[1])),
+    );
+    let svg = plots::landscape(
+        &Landscape {
+            grid: None,
+            levels: &[],
+            samples: &samples,
+            minima: &minima,
+            rounds: (r0, r1),
+            x: (-180.0, 180.0),
+            y: (-180.0, 180.0),
+        },
+        Axes {
+            x: &x_label,
+            y: &y_label,
+        },
+    )?;
+    out.push_str("<p class=\"lead\">A Ramachandran scatter: explore samples at the first two dihedrals of the dedup fingerprint, coloured by the round that drew them; circles mark the catalogue's minima. The map is a thinned picture, not the data: use <code>tarn export</code> for every sample.</p>\n");
+    let caption = format!(
+        "{} samples from {} round(s) (at most {MAX_LANDSCAPE_POINTS}, evenly thinned); both axes wrap at ±180°.",
+        samples.len(),
+        plots::thin(c.rounds.len(), MAX_LANDSCAPE_ROUNDS).len()
+    );
+    let empty = (samples.is_empty() && minima.is_empty()).then_some("no sample stored yet");
+    out.push_str(
+        &figure(
+            "plot-ramachandran",
+            &svg,
+            "explore samples at their backbone dihedrals, coloured by round",
             &escape(&caption),
             empty,
         )

@@ -1,11 +1,16 @@
 //! The `quench` dedup worker: quench every sample to its local minimum (FIRE), identify
 //! the minimum against the catalogue by energy and fingerprint, and thin the samples so
 //! that the training set stays balanced between states.
+//!
+//! The fingerprint is the system's natural one unless the stage names another, e.g.
+//! `fingerprint = { kind = "dihedrals", dihedrals = [[4, 6, 8, 14], [6, 8, 14, 16]] }`
+//! for a molecule's backbone φ, ψ (degrees, compared with periodic distance). The FIRE
+//! step sizes can be set for systems whose units make the defaults too large or small.
 
 use serde::Deserialize;
 
 use super::{Output, Task};
-use crate::physics::fingerprint::{assign, Fingerprint, StateTolerance};
+use crate::physics::fingerprint::{Fingerprint, StateTolerance};
 use crate::physics::quench::{quench_batch, FireParams, QuenchStatus};
 use crate::protocol::Array;
 
@@ -24,6 +29,45 @@ pub struct QuenchParams {
     /// At most this many samples per state and round go into the training set,
     /// evenly spaced in sample order.
     pub max_per_state: u64,
+    /// The state fingerprint; the system's natural one when absent.
+    pub fingerprint: Option<Fingerprint>,
+    /// FIRE's initial time step.
+    pub dt_start: f64,
+    /// FIRE's largest time step.
+    pub dt_max: f64,
+    /// FIRE's largest displacement norm of one step.
+    pub max_step: f64,
+}
+
+impl QuenchParams {
+    /// The FIRE parameters these settings give.
+    pub fn fire(&self) -> FireParams {
+        FireParams {
+            force_tolerance: self.force_tolerance,
+            max_steps: self.max_steps,
+            dt_start: self.dt_start,
+            dt_max: self.dt_max,
+            max_step: self.max_step,
+            ..FireParams::default()
+        }
+    }
+
+    /// Checks every setting for configurations of `dim` coordinates, naming the first
+    /// bad key, so that `tarn check` refuses a bad stage before the campaign starts.
+    pub fn validate(&self, dim: usize) -> Result<(), String> {
+        self.fire().validate().map_err(|e| e.to_string())?;
+        let tol_ok = |v: f64| v.is_finite() && v >= 0.0;
+        if !tol_ok(self.energy_tolerance) {
+            return Err("energy_tolerance: must be finite and not negative".into());
+        }
+        if !tol_ok(self.fingerprint_tolerance) {
+            return Err("fingerprint_tolerance: must be finite and not negative".into());
+        }
+        if let Some(fp) = &self.fingerprint {
+            fp.validate(dim).map_err(|e| format!("fingerprint: {e}"))?;
+        }
+        Ok(())
+    }
 }
 
 impl Default for QuenchParams {
@@ -36,6 +80,10 @@ impl Default for QuenchParams {
             energy_tolerance: tol.energy,
             fingerprint_tolerance: tol.fingerprint,
             max_per_state: 500,
+            fingerprint: None,
+            dt_start: fire.dt_start,
+            dt_max: fire.dt_max,
+            max_step: fire.max_step,
         }
     }
 }
@@ -48,16 +96,16 @@ pub fn quench(task: &Task) -> Result<Output, String> {
     let samples = task.input("samples")?;
     let catalogue = task.input("catalogue")?;
     let cat_energies = task.input("catalogue_energies")?;
-    let fire = FireParams {
-        force_tolerance: p.force_tolerance,
-        max_steps: p.max_steps,
-        ..FireParams::default()
-    };
+    p.validate(dim)?;
+    let fire = p.fire();
     let tol = StateTolerance {
         energy: p.energy_tolerance,
         fingerprint: p.fingerprint_tolerance,
     };
-    let fp = Fingerprint::for_system(&spec);
+    let fp = p
+        .fingerprint
+        .clone()
+        .unwrap_or_else(|| Fingerprint::for_system(&spec));
     let n = samples.rows();
     let batch =
         quench_batch(model.as_ref(), &samples.data, &fire).map_err(|e| format!("quench: {e}"))?;
@@ -83,7 +131,7 @@ pub fn quench(task: &Task) -> Result<Output, String> {
         let x = batch.minimum(i);
         let e = batch.energies[i];
         let f = fp.compute(x);
-        let label = match assign(e, &f, &known, &tol) {
+        let label = match fp.assign(e, &f, &known, &tol) {
             Some(k) => k,
             None => {
                 known.push((e, f));
@@ -155,7 +203,38 @@ fn thin(labels: &[f64], max: u64) -> Vec<f64> {
 
 #[cfg(test)]
 mod tests {
-    use super::thin;
+    use super::{thin, QuenchParams};
+
+    fn params(v: serde_json::Value) -> Result<QuenchParams, String> {
+        serde_json::from_value(v).map_err(|e| e.to_string())
+    }
+
+    #[test]
+    fn fingerprint_and_fire_settings_are_read_and_validated() {
+        let p = params(serde_json::json!({
+            "fingerprint": {"kind": "dihedrals", "dihedrals": [[4, 6, 8, 14], [6, 8, 14, 16]]},
+            "dt_start": 0.002, "dt_max": 0.02, "max_step": 0.05, "force_tolerance": 1e-3
+        }))
+        .unwrap();
+        assert!(p.validate(66).is_ok());
+        assert_eq!(p.fire().dt_max, 0.02);
+        let err = p.validate(30).unwrap_err();
+        assert!(
+            err.starts_with("fingerprint:") && err.contains("below the 10 atoms"),
+            "{err}"
+        );
+        let bad_dt = params(serde_json::json!({"dt_start": 0.5, "dt_max": 0.1})).unwrap();
+        assert!(bad_dt.validate(2).unwrap_err().contains("dt_max"));
+        let bad_tol = params(serde_json::json!({"fingerprint_tolerance": -1.0})).unwrap();
+        assert!(bad_tol
+            .validate(2)
+            .unwrap_err()
+            .contains("fingerprint_tolerance"));
+        let typo =
+            params(serde_json::json!({"fingerprint": {"kind": "dihedral", "dihedrals": []}}));
+        assert!(typo.unwrap_err().contains("dihedral"));
+        assert!(params(serde_json::json!({"fingerprints": 1})).is_err());
+    }
 
     #[test]
     fn thinning_keeps_exactly_the_cap_per_state_and_drops_unassigned() {

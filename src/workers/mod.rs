@@ -109,7 +109,7 @@ pub fn check_params(
             .validate()
             .map_err(|e| e.to_string()),
         "generate" => flow::check_generate(&v),
-        "quench" => de::<dedup::QuenchParams>(&v).map(|_| ()),
+        "quench" => de::<dedup::QuenchParams>(&v)?.validate(dim),
         "realnvp" => flow::check_retrain(system, dim, kt, &v),
         "reweight" => evaluate::check(&v),
         "mbar" | "reweight-bias" => evaluate_samples::check(&v),

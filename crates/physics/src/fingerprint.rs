@@ -8,11 +8,16 @@
 //! - φ⁴: the sign of the magnetisation (mean field) and its magnitude, `[sign, |m|]`,
 //!   so the two ordered states differ by 2 in the first entry.
 //!
+//! - Molecules: chosen dihedral angles in degrees (e.g. the backbone φ, ψ), which do not
+//!   change under translation and rotation and tell conformers apart.
+//!
 //! Two fingerprints are compared by their largest absolute difference (L∞ distance);
-//! fingerprints of different lengths never match.
+//! for dihedral fingerprints each difference is taken the short way round the circle
+//! (179° and −179° are 2° apart). Fingerprints of different lengths never match.
 
 use serde::{Deserialize, Serialize};
 
+use crate::cv::{dihedral_degrees, periodic_difference, validate_dihedral};
 use crate::error::{require, PhysicsError};
 use crate::models::SystemSpec;
 
@@ -30,6 +35,12 @@ pub enum Fingerprint {
     Coordinates {},
     /// `[sign(m), |m|]` with m the mean of all coordinates.
     Magnetisation {},
+    /// Dihedral angles (degrees) of atoms in 3-D, one per quadruple (i, j, k, l),
+    /// compared with periodic distance.
+    Dihedrals {
+        /// The atom quadruples, e.g. `[[4, 6, 8, 14], [6, 8, 14, 16]]` for φ and ψ.
+        dihedrals: Vec<[usize; 4]>,
+    },
 }
 
 impl Fingerprint {
@@ -53,8 +64,39 @@ impl Fingerprint {
                     "pair distances need at least two particles of {dims} coordinates in dim {dim}"
                 ),
             ),
+            Fingerprint::Dihedrals { dihedrals } => {
+                require(
+                    !dihedrals.is_empty(),
+                    "dihedrals",
+                    "needs at least one dihedral",
+                )?;
+                dihedrals
+                    .iter()
+                    .try_for_each(|d| validate_dihedral(*d, dim))
+            }
             _ => require(dim > 0, "dim", "must be positive"),
         }
+    }
+
+    /// The distance between two fingerprints of this kind: L∞, with periodic
+    /// differences for dihedrals; infinite when their lengths differ.
+    pub fn distance(&self, a: &[f64], b: &[f64]) -> f64 {
+        match self {
+            Fingerprint::Dihedrals { .. } => periodic_fingerprint_distance(a, b),
+            _ => fingerprint_distance(a, b),
+        }
+    }
+
+    /// The index of the known state that a minimum belongs to, or `None` for a new
+    /// state, as [`assign`] but with this kind's distance.
+    pub fn assign(
+        &self,
+        energy: f64,
+        fingerprint: &[f64],
+        known: &[(f64, Vec<f64>)],
+        tol: &StateTolerance,
+    ) -> Option<usize> {
+        assign_by(energy, fingerprint, known, tol, |a, b| self.distance(a, b))
     }
 
     /// The fingerprint of one configuration.
@@ -76,6 +118,9 @@ impl Fingerprint {
                     0.0
                 };
                 vec![sign, m.abs()]
+            }
+            Fingerprint::Dihedrals { dihedrals } => {
+                dihedrals.iter().map(|d| dihedral_degrees(x, *d)).collect()
             }
         }
     }
@@ -134,6 +179,17 @@ pub fn fingerprint_distance(a: &[f64], b: &[f64]) -> f64 {
         .fold(0.0f64, |m, (x, y)| m.max((x - y).abs()))
 }
 
+/// L∞ distance between two fingerprints of angles in degrees, each difference taken the
+/// short way round the circle; infinite when their lengths differ.
+pub fn periodic_fingerprint_distance(a: &[f64], b: &[f64]) -> f64 {
+    if a.len() != b.len() {
+        return f64::INFINITY;
+    }
+    a.iter()
+        .zip(b)
+        .fold(0.0f64, |m, (x, y)| m.max(periodic_difference(*x, *y).abs()))
+}
+
 /// Whether two minima (energy, fingerprint) are the same state within `tol`.
 pub fn same_state(
     energy_a: f64,
@@ -155,13 +211,25 @@ pub fn assign(
     known: &[(f64, Vec<f64>)],
     tol: &StateTolerance,
 ) -> Option<usize> {
+    assign_by(energy, fingerprint, known, tol, fingerprint_distance)
+}
+
+/// [`assign`] with the fingerprint distance given, so that every kind of fingerprint
+/// shares one rule for choosing among several matches.
+fn assign_by(
+    energy: f64,
+    fingerprint: &[f64],
+    known: &[(f64, Vec<f64>)],
+    tol: &StateTolerance,
+    distance: impl Fn(&[f64], &[f64]) -> f64,
+) -> Option<usize> {
     let mut best: Option<(usize, f64, f64)> = None;
     for (k, (e, fp)) in known.iter().enumerate() {
-        if !same_state(energy, fingerprint, *e, fp, tol) {
+        let d = distance(fingerprint, fp);
+        let de = (energy - e).abs();
+        if de > tol.energy || d > tol.fingerprint {
             continue;
         }
-        let d = fingerprint_distance(fingerprint, fp);
-        let de = (energy - e).abs();
         let better = match best {
             None => true,
             Some((_, bd, bde)) => d < bd || (d == bd && de < bde),
@@ -171,4 +239,81 @@ pub fn assign(
         }
     }
     best.map(|(k, _, _)| k)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A 3-D configuration of four atoms whose dihedral 0-1-2-3 is `t` degrees.
+    fn four_atoms(t_deg: f64) -> Vec<f64> {
+        let t = t_deg.to_radians();
+        vec![
+            1.0,
+            0.0,
+            0.0,
+            0.0,
+            0.0,
+            0.0,
+            0.0,
+            0.0,
+            1.0,
+            t.cos(),
+            t.sin(),
+            1.0,
+        ]
+    }
+
+    #[test]
+    fn dihedral_fingerprints_match_across_the_seam() {
+        let fp = Fingerprint::Dihedrals {
+            dihedrals: vec![[0, 1, 2, 3], [3, 2, 1, 0]],
+        };
+        fp.validate(12).unwrap();
+        let a = fp.compute(&four_atoms(179.0));
+        let b = fp.compute(&four_atoms(-179.0));
+        assert!((a[0] - 179.0).abs() < 1e-9 && (b[0] + 179.0).abs() < 1e-9);
+        assert!((fp.distance(&a, &b) - 2.0).abs() < 1e-9);
+        // The plain L∞ distance would call them 358° apart and two states.
+        assert!(fingerprint_distance(&a, &b) > 357.0);
+        let tol = StateTolerance {
+            energy: 0.1,
+            fingerprint: 5.0,
+        };
+        let known = vec![(-1.0, a.clone()), (-1.0, fp.compute(&four_atoms(60.0)))];
+        assert_eq!(fp.assign(-1.02, &b, &known, &tol), Some(0));
+        assert_eq!(
+            fp.assign(-1.02, &fp.compute(&four_atoms(57.0)), &known, &tol),
+            Some(1)
+        );
+        assert_eq!(
+            fp.assign(-1.02, &fp.compute(&four_atoms(-60.0)), &known, &tol),
+            None
+        );
+        // Same angles but an energy outside the tolerance is another state.
+        assert_eq!(fp.assign(-1.5, &b, &known, &tol), None);
+    }
+
+    #[test]
+    fn dihedral_fingerprint_validation() {
+        let empty = Fingerprint::Dihedrals { dihedrals: vec![] };
+        assert!(empty
+            .validate(12)
+            .unwrap_err()
+            .to_string()
+            .contains("at least one"));
+        let out = Fingerprint::Dihedrals {
+            dihedrals: vec![[0, 1, 2, 7]],
+        };
+        assert!(out
+            .validate(12)
+            .unwrap_err()
+            .to_string()
+            .contains("below the 4 atoms"));
+        assert!(Fingerprint::Dihedrals {
+            dihedrals: vec![[0, 1, 2, 3]]
+        }
+        .validate(11)
+        .is_err());
+    }
 }

@@ -1,0 +1,134 @@
+#!/usr/bin/env python3
+"""An external energy model for tarn: a molecule under an OpenMM force field, served over
+stdin/stdout in tarn's framing (version 1; the module doc of
+crates/physics/src/external.rs is the specification):
+
+  request : b"TRNQ", u32 version=1, u64 n, u64 dim, u8 want_forces, n*dim f64
+  reply   : b"TRNR", u32 status=0, u64 n, n f64 energies, [n*dim f64 forces]
+  failure : b"TRNR", u32 status!=0, u64 L, L bytes of UTF-8 message
+
+All little-endian. Units (see peptide.py): positions in angstrom, energies in kJ/mol,
+forces in kJ/mol/A (minus the gradient). Nothing but replies goes to stdout; the program
+exits 0 when tarn closes its stdin.
+
+    python3 energy_server.py MOLECULE.pdb [--timing FILE]
+
+With --timing, the program writes to FILE at exit a JSON object with the number of
+configurations it evaluated and the seconds spent inside OpenMM (setting positions and
+computing energies and forces), so that the cost of the pipe can be measured in the
+same run as the difference to the caller's wall time (see bench_pipe.py).
+
+The PDB gives the topology only (atom order = coordinate order); the force field is
+amber14-all.xml in vacuum with no cutoff and no constraints, on the Reference platform.
+"""
+import json
+import struct
+import sys
+import time
+
+import numpy as np
+
+import peptide
+
+REQUEST = struct.Struct("<4sIQQB")
+REPLY = struct.Struct("<4sIQ")
+
+
+def read_exact(stream, size):
+    """Exactly size bytes, or fewer only at the end of the stream."""
+    chunks = []
+    while size > 0:
+        chunk = stream.read(size)
+        if not chunk:
+            break
+        chunks.append(chunk)
+        size -= len(chunk)
+    return b"".join(chunks)
+
+
+def fail(out, status, message):
+    """A failure reply that tarn shows to the user."""
+    data = message.encode()
+    out.write(REPLY.pack(b"TRNR", status, len(data)) + data)
+    out.flush()
+
+
+class Evaluator:
+    """Batched energies and forces of one molecule on one OpenMM context."""
+
+    def __init__(self, pdb_path):
+        topology = peptide.load_topology(pdb_path)
+        self.dim = 3 * topology.getNumAtoms()
+        self.context = peptide.reference_context(peptide.create_system(topology))
+        self.evals = 0
+        self.seconds = 0.0
+
+    def evaluate(self, x, want_forces):
+        """Energies [n] in kJ/mol and, if wanted, forces [n, dim] in kJ/mol/A."""
+        start = time.perf_counter()
+        n = x.shape[0]
+        energies = np.empty(n)
+        forces = np.empty((n, self.dim)) if want_forces else None
+        for i in range(n):
+            e, f = peptide.energy_and_forces(self.context, x[i]) if want_forces else (
+                peptide.energy_only(self.context, x[i]), None)
+            energies[i] = e
+            if want_forces:
+                forces[i] = f
+        self.evals += n
+        self.seconds += time.perf_counter() - start
+        return energies, forces
+
+
+def serve(evaluator, inp, out):
+    """Answers requests until the input closes; returns the exit status."""
+    while True:
+        header = read_exact(inp, REQUEST.size)
+        if not header:
+            return 0
+        if len(header) < REQUEST.size:
+            print("energy_server.py: truncated request header", file=sys.stderr)
+            return 1
+        magic, version, n, dim, want_forces = REQUEST.unpack(header)
+        if magic != b"TRNQ" or version != 1:
+            fail(out, 1, f"bad request magic {magic!r} or version {version}")
+            return 1
+        payload = read_exact(inp, 8 * n * dim)
+        if len(payload) < 8 * n * dim:
+            print("energy_server.py: truncated request payload", file=sys.stderr)
+            return 1
+        if dim != evaluator.dim:
+            fail(out, 2, f"the molecule has {evaluator.dim} coordinates, the request {dim}")
+            continue
+        x = np.frombuffer(payload, dtype="<f8").reshape(n, dim)
+        try:
+            energies, forces = evaluator.evaluate(x, want_forces)
+        except Exception as e:  # an OpenMM error becomes a failure reply, not a crash
+            fail(out, 3, f"OpenMM: {e}")
+            continue
+        parts = [REPLY.pack(b"TRNR", 0, n), energies.astype("<f8").tobytes()]
+        if want_forces:
+            parts.append(forces.astype("<f8").tobytes())
+        out.write(b"".join(parts))
+        out.flush()
+
+
+def main():
+    args = sys.argv[1:]
+    timing = None
+    if len(args) == 3 and args[1] == "--timing":
+        timing = args.pop(2)
+        args.pop(1)
+    if len(args) != 1:
+        print("usage: energy_server.py MOLECULE.pdb [--timing FILE]", file=sys.stderr)
+        return 2
+    evaluator = Evaluator(args[0])
+    status = serve(evaluator, sys.stdin.buffer, sys.stdout.buffer)
+    if timing:
+        with open(timing, "w") as f:
+            json.dump({"evals": evaluator.evals, "seconds": evaluator.seconds}, f)
+    return status
+
+
+if __name__ == "__main__":
+    sys.exit(main())
