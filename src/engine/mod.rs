@@ -20,10 +20,12 @@ use std::time::{Duration, Instant};
 use tokio::sync::watch;
 use tracing::Instrument;
 
-use crate::executor::{Exit, Job, LocalExecutor, Outcome};
+use crate::executor::slurm::{job_name, BatchRequest, Existing};
+use crate::executor::{Executor, Exit, Job, OnStart, Outcome, Started};
 use crate::protocol::{npy, read_result, Role, TaskFile, PROTOCOL_VERSION};
 use crate::spec::{Campaign, KeepDirs, SpecError, Stage, Worker};
 use crate::store::{
+    jobs::{JobPhase, JobRecord},
     keys, now_unix, Attempt, Batch, CampaignVersion, Meta, RoundRecord, StageTotals, StopDecision,
     Store, StoreError, TaskStatus, SCHEMA_VERSION,
 };
@@ -36,7 +38,10 @@ pub enum StopLevel {
     Run,
     /// Start no new task; let running ones finish and commit.
     AfterRunning,
-    /// End running workers now.
+    /// Stop waiting for batch jobs and leave them queued or running (a resumed tarn
+    /// re-attaches to them); local workers are not affected.
+    Detach,
+    /// End running workers now (batch jobs are cancelled).
     Now,
 }
 
@@ -184,7 +189,7 @@ pub fn line_diff(old: &str, new: &str) -> String {
 struct Ctx {
     campaign: Campaign,
     store: Store,
-    executor: LocalExecutor,
+    executor: Executor,
     monitor: Monitor,
     level: watch::Receiver<StopLevel>,
     exe: PathBuf,
@@ -192,13 +197,22 @@ struct Ctx {
 }
 
 /// Runs the campaign until a stop rule holds, a task fails past its retries, or the
-/// user interrupts. `level` is raised by the signal handler.
+/// user interrupts. `level` is raised by the signal handler. With a batch executor the
+/// signals are translated first (see [`batch_stop_levels`]): jobs on a cluster are
+/// never cancelled without the user's explicit answer.
 pub async fn run(
     campaign: Campaign,
     store: Store,
     opts: &RunOptions,
-    level: watch::Receiver<StopLevel>,
+    signals: watch::Receiver<StopLevel>,
 ) -> Result<RunEnd, EngineError> {
+    let executor = Executor::for_spec(&campaign.executor);
+    let (batch_tx, level) = if executor.is_batch() {
+        let (tx, rx) = watch::channel(StopLevel::Run);
+        (Some(tx), rx)
+    } else {
+        (None, signals.clone())
+    };
     let dir = store.dir().to_path_buf();
     let rounds = store.rounds()?;
     let snap = snapshot::Snapshot {
@@ -213,7 +227,7 @@ pub async fn run(
         ..Default::default()
     };
     let ctx = Arc::new(Ctx {
-        executor: LocalExecutor::new(campaign.executor.max_parallel),
+        executor,
         monitor: Monitor::new(dir.clone(), snap, opts.quiet),
         campaign,
         store,
@@ -226,7 +240,9 @@ pub async fn run(
         "started",
         format!("engine run {run_id} started (pid {})", std::process::id()),
     )?;
-    let watcher = {
+    let watcher = if let Some(tx) = batch_tx {
+        tokio::spawn(batch_stop_levels(ctx.clone(), signals, tx))
+    } else {
         let ctx = ctx.clone();
         let mut level = ctx.level.clone();
         tokio::spawn(async move {
@@ -550,11 +566,20 @@ async fn run_task_inner(
     let mut attempts = existing.map(|t| t.attempts).unwrap_or_default();
     let policy = &ctx.campaign.executor.retry;
     let mut last_error = String::new();
+    // An attempt an earlier session left on the batch system: wait for it first.
+    let mut left_behind = ctx
+        .store
+        .job(task.round, task.stage_index, task.walker)?
+        .filter(|_| ctx.executor.is_batch());
     for this_session in 1..=policy.attempts {
-        if *ctx.level.borrow() > StopLevel::Run {
+        let reattach = left_behind.take();
+        if reattach.is_none() && *ctx.level.borrow() > StopLevel::Run {
             return Ok(RunEnd::Interrupted);
         }
-        let number = attempts.len() as u32 + 1;
+        let number = reattach
+            .as_ref()
+            .map(|j| j.attempt)
+            .unwrap_or(attempts.len() as u32 + 1);
         let prepared = inputs::prepare(&ctx.store, &ctx.campaign, stage, task)?;
         let attempt_dir = ctx
             .dir
@@ -562,27 +587,82 @@ async fn run_task_inner(
             .join(format!("r{:04}", task.round))
             .join(format!("{}.w{:03}", stage.name, task.walker))
             .join(format!("a{number}"));
-        write_task_dir(&ctx.campaign, stage, task, &prepared, &attempt_dir).map_err(|e| {
-            EngineError::Io(format!(
-                "{}: cannot prepare the task directory: {e}",
-                attempt_dir.display()
-            ))
-        })?;
-        let started_unix = now_unix();
-        let job = make_job(ctx, stage, task, &attempt_dir);
-        let on_start = || {
+        // A re-attached job runs in its directory as it is; never rewrite it.
+        if reattach.is_none() || !attempt_dir.join("task.json").is_file() {
+            write_task_dir(&ctx.campaign, stage, task, &prepared, &attempt_dir).map_err(|e| {
+                EngineError::Io(format!(
+                    "{}: cannot prepare the task directory: {e}",
+                    attempt_dir.display()
+                ))
+            })?;
+        }
+        let started_unix = reattach
+            .as_ref()
+            .map(|j| j.submitted_unix)
+            .unwrap_or_else(now_unix);
+        let mut job = make_job(ctx, stage, task, &attempt_dir, number);
+        if let Some(b) = job.batch.as_mut() {
+            match &reattach {
+                Some(j) => {
+                    b.existing = Some(match (j.phase, &j.job_id) {
+                        (JobPhase::Submitted, Some(id)) => Existing::Id(id.clone()),
+                        _ => Existing::Named,
+                    });
+                }
+                None => {
+                    // Before sbatch runs, so that a tarn killed in between finds the job
+                    // by its name.
+                    let rec = JobRecord::new(
+                        &task.id,
+                        number,
+                        JobPhase::Submitting,
+                        None,
+                        &b.name,
+                        &job.dir.display().to_string(),
+                    );
+                    ctx.store
+                        .put_job(task.round, task.stage_index, task.walker, &rec)?;
+                }
+            }
+        }
+        let batch_name = job.batch.as_ref().map(|b| b.name.clone());
+        let job_dir = job.dir.display().to_string();
+        let on_start: OnStart = Box::new(|started| {
+            if let (Started::Batch { job_id }, Some(name)) = (started, &batch_name) {
+                let mut rec = JobRecord::new(
+                    &task.id,
+                    number,
+                    JobPhase::Submitted,
+                    Some(job_id.to_string()),
+                    name,
+                    &job_dir,
+                );
+                rec.submitted_unix = started_unix;
+                ctx.store
+                    .put_job(task.round, task.stage_index, task.walker, &rec)
+                    .map_err(|e| format!("cannot record Slurm job {job_id}: {e}"))?;
+                tracing::info!(task = %task.id, job_id, "submitted to Slurm");
+            }
             ctx.monitor.emit(Event::TaskStarted {
                 id: task.id.clone(),
                 attempt: number,
-            })
-        };
+            });
+            Ok(())
+        });
         let outcome = ctx.executor.run(job, ctx.level.clone(), on_start).await;
         let mut attempt = attempt_of(number, &outcome, started_unix);
         let failure = match &outcome.exit {
             Exit::NotStarted => {
+                if ctx.executor.is_batch() {
+                    let mut b = Batch::default();
+                    b.remove_job(task.round, task.stage_index, task.walker);
+                    ctx.store.apply(b)?;
+                }
                 remove_attempt_dir(&attempt_dir);
                 return Ok(RunEnd::Interrupted);
             }
+            // The job stays on the cluster, its record in the store: resume re-attaches.
+            Exit::Detached => return Ok(RunEnd::Interrupted),
             Exit::Cancelled => {
                 attempt.outcome = "cancelled".into();
                 record_attempt(
@@ -610,7 +690,8 @@ async fn run_task_inner(
                         &valid,
                         all,
                     ) {
-                        Ok(batch) => {
+                        Ok(mut batch) => {
+                            batch.remove_job(task.round, task.stage_index, task.walker);
                             ctx.store.apply(batch)?;
                             ctx.monitor.emit(Event::TaskDone {
                                 id: task.id.clone(),
@@ -710,6 +791,7 @@ fn record_attempt(
     let rec = commit::task_record(stage, task, status, all);
     let mut b = Batch::default();
     b.put(keys::task(task.round, task.stage_index, task.walker), &rec);
+    b.remove_job(task.round, task.stage_index, task.walker);
     b.event(
         if status == TaskStatus::Failed {
             "task_failed"
@@ -730,8 +812,9 @@ fn attempt_of(number: u32, o: &Outcome, started_unix: f64) -> Attempt {
             Exit::Code(_) => "exit",
             Exit::Signal(_) => "signal",
             Exit::TimedOut => "timeout",
-            Exit::Cancelled | Exit::NotStarted => "cancelled",
+            Exit::Cancelled | Exit::NotStarted | Exit::Detached => "cancelled",
             Exit::SpawnFailed(_) => "spawn",
+            Exit::Ended(state) => return_outcome_of_state(state),
         }
         .into(),
         exit_code: match o.exit {
@@ -762,6 +845,9 @@ fn describe_exit(exit: &Exit, o: &Outcome, timeout: f64) -> String {
         .find(|l| !l.trim().is_empty())
         .map(|l| format!("; its stderr ends: {}", l.trim()))
         .unwrap_or_default();
+    if let Some(d) = &o.detail {
+        return format!("{d}{last}");
+    }
     match exit {
         Exit::Code(c) => format!("the worker exited with status {c}{last}"),
         Exit::Signal(s) => format!("the worker was killed by signal {s}{last}"),
@@ -770,7 +856,23 @@ fn describe_exit(exit: &Exit, o: &Outcome, timeout: f64) -> String {
             (timeout * 1000.0).round() / 1000.0
         ),
         Exit::SpawnFailed(m) => m.clone(),
-        Exit::Cancelled | Exit::NotStarted => "cancelled".into(),
+        Exit::Ended(state) => format!("the batch system ended the job (state {state}){last}"),
+        Exit::Cancelled | Exit::NotStarted | Exit::Detached => "cancelled".into(),
+    }
+}
+
+/// The attempt outcome of a job a batch system ended: `slurm_` and the state in lower
+/// case (`slurm_cancelled`, `slurm_node_fail`, ...).
+fn return_outcome_of_state(state: &str) -> &'static str {
+    match state {
+        "CANCELLED" => "slurm_cancelled",
+        "NODE_FAIL" => "slurm_node_fail",
+        "PREEMPTED" => "slurm_preempted",
+        "OUT_OF_MEMORY" => "slurm_out_of_memory",
+        "BOOT_FAIL" => "slurm_boot_fail",
+        "DEADLINE" => "slurm_deadline",
+        "UNKNOWN" => "slurm_lost",
+        _ => "slurm_ended",
     }
 }
 
@@ -824,8 +926,9 @@ pub fn write_task_dir(
     )
 }
 
-/// The process to start for a task.
-fn make_job(ctx: &Ctx, stage: &Stage, task: &TaskRef, dir: &Path) -> Job {
+/// The process to start for a task (attempt `number`), with its Slurm request when the
+/// campaign runs on Slurm.
+fn make_job(ctx: &Ctx, stage: &Stage, task: &TaskRef, dir: &Path, number: u32) -> Job {
     let (program, args) = resolve_command(&stage.worker, &ctx.exe, &ctx.campaign.base_dir);
     let threads = ctx.campaign.executor.threads_per_task.to_string();
     let abs_dir = dir.canonicalize().unwrap_or_else(|_| dir.to_path_buf());
@@ -845,16 +948,37 @@ fn make_job(ctx: &Ctx, stage: &Stage, task: &TaskRef, dir: &Path) -> Job {
     ] {
         env.push((k.to_string(), threads.clone()));
     }
+    let timeout = stage.timeout.unwrap_or(ctx.campaign.executor.timeout);
+    let batch = ctx.campaign.executor.slurm.as_ref().map(|s| {
+        let base = &s.defaults;
+        let mut resources = stage
+            .slurm
+            .as_ref()
+            .map_or_else(|| base.clone(), |r| r.over(base));
+        // Slurm counts whole minutes: the task's timeout, rounded up.
+        resources.time_limit_minutes = resources
+            .time_limit_minutes
+            .or(Some(timeout.as_secs().div_ceil(60).max(1)));
+        resources.cpus = resources
+            .cpus
+            .or(Some(ctx.campaign.executor.threads_per_task));
+        BatchRequest {
+            name: job_name(&ctx.campaign.name, &task.id, number, &abs_dir),
+            resources,
+            existing: None,
+        }
+    });
     Job {
         id: task.id.clone(),
         program,
         args,
         dir: abs_dir,
         env,
-        timeout: stage.timeout.unwrap_or(ctx.campaign.executor.timeout),
+        timeout,
         grace: Duration::from_secs(5),
         tail_bytes: 4096,
         log_bytes: 64 << 20,
+        batch,
     }
 }
 
@@ -883,6 +1007,63 @@ pub fn resolve_command(worker: &Worker, exe: &Path, base: &Path) -> (PathBuf, Ve
                 PathBuf::from(program),
                 cmd[1..].iter().map(|a| fix(a)).collect(),
             )
+        }
+    }
+}
+
+/// Turns the signal handler's levels into the batch executor's: a cluster job is
+/// cancelled only when the user says so on a terminal. The first Ctrl-C on a terminal
+/// stops new submissions and asks whether to cancel the jobs in flight (yes: cancel
+/// them, [`StopLevel::Now`]; anything else: leave them, [`StopLevel::Detach`]). Without
+/// a terminal, and for a second Ctrl-C or SIGTERM, the jobs are left to Slurm and tarn
+/// exits resumable; `tarn resume` waits for them.
+async fn batch_stop_levels(
+    ctx: Arc<Ctx>,
+    mut signals: watch::Receiver<StopLevel>,
+    tx: watch::Sender<StopLevel>,
+) {
+    use std::io::IsTerminal;
+    let tx = Arc::new(tx);
+    let interactive = std::io::stdin().is_terminal() && std::io::stderr().is_terminal();
+    let mut asked = false;
+    while signals.changed().await.is_ok() {
+        let raw = *signals.borrow();
+        let in_flight = ctx.store.jobs().map(|j| j.len()).unwrap_or(0);
+        let name = ctx.campaign.name.clone();
+        if raw == StopLevel::AfterRunning && interactive && !asked {
+            asked = true;
+            tx.send_replace(StopLevel::AfterRunning);
+            ctx.monitor.line(&format!(
+                "interrupt: no new jobs will be submitted. Cancel the {in_flight} Slurm job(s) of campaign {name} that are queued or running? [y/N] (N leaves them; `tarn resume {name}` waits for them)"
+            ));
+            let tx = tx.clone();
+            let ctx = ctx.clone();
+            tokio::spawn(async move {
+                let answer = tokio::task::spawn_blocking(|| {
+                    let mut line = String::new();
+                    std::io::stdin().read_line(&mut line).map(|_| line)
+                })
+                .await;
+                let yes = matches!(answer, Ok(Ok(l)) if l.trim().eq_ignore_ascii_case("y") || l.trim().eq_ignore_ascii_case("yes"));
+                let level = if yes {
+                    StopLevel::Now
+                } else {
+                    StopLevel::Detach
+                };
+                if *tx.borrow() < level {
+                    ctx.monitor.line(if yes {
+                        "cancelling the Slurm jobs (scancel), then stopping"
+                    } else {
+                        "leaving the Slurm jobs queued or running; stopping"
+                    });
+                    tx.send_replace(level);
+                }
+            });
+        } else if *tx.borrow() < StopLevel::Detach {
+            ctx.monitor.line(&format!(
+                "interrupt: leaving {in_flight} Slurm job(s) queued or running and stopping; `tarn resume {name}` waits for them"
+            ));
+            tx.send_replace(StopLevel::Detach);
         }
     }
 }

@@ -16,7 +16,7 @@ use nix::sys::signal::{killpg, Signal};
 use nix::unistd::Pid;
 use tokio::sync::{oneshot, watch, Semaphore};
 
-use super::{Exit, Job, Outcome, ENV_ALLOW};
+use super::{Exit, Job, OnStart, Outcome, Started, ENV_ALLOW};
 use crate::engine::StopLevel;
 
 /// Runs jobs as local processes, at most `max_parallel` at a time.
@@ -38,24 +38,24 @@ impl LocalExecutor {
 
     /// Runs one job to its end (or its timeout, or a kill request). `on_start` is called
     /// once the job has a slot and is about to start.
-    pub async fn run(&self, job: Job, mut kill: KillSwitch, on_start: impl FnOnce()) -> Outcome {
+    pub async fn run(&self, job: Job, mut kill: KillSwitch, on_start: OnStart<'_>) -> Outcome {
         let _slot = self.slots.acquire().await.expect("semaphore never closed");
         if *kill.borrow() > StopLevel::Run {
-            return cancelled_before_start();
+            return Outcome::bare(Exit::NotStarted);
         }
-        on_start();
+        if let Err(e) = on_start(Started::Process) {
+            return Outcome::bare(Exit::SpawnFailed(e));
+        }
         let started = Instant::now();
         let mut child = match spawn(&job) {
             Ok(c) => c,
             Err(e) => {
                 return Outcome {
-                    exit: Exit::SpawnFailed(format!("cannot start {}: {e}", job.program.display())),
                     wall: started.elapsed(),
-                    cpu: Duration::ZERO,
-                    stdout_tail: String::new(),
-                    stderr_tail: String::new(),
-                    stdout_bytes: 0,
-                    stderr_bytes: 0,
+                    ..Outcome::bare(Exit::SpawnFailed(format!(
+                        "cannot start {}: {e}",
+                        job.program.display()
+                    )))
                 }
             }
         };
@@ -120,19 +120,8 @@ impl LocalExecutor {
             stderr_tail,
             stdout_bytes,
             stderr_bytes,
+            detail: None,
         }
-    }
-}
-
-fn cancelled_before_start() -> Outcome {
-    Outcome {
-        exit: Exit::NotStarted,
-        wall: Duration::ZERO,
-        cpu: Duration::ZERO,
-        stdout_tail: String::new(),
-        stderr_tail: String::new(),
-        stdout_bytes: 0,
-        stderr_bytes: 0,
     }
 }
 

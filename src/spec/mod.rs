@@ -124,6 +124,8 @@ struct RawStage {
     pool_limit: Option<u64>,
     #[serde(default)]
     params: toml::Table,
+    /// Slurm resources of this stage's jobs (`[explore.slurm]`, `[dedup.slurm]`, ...).
+    slurm: Option<RawSlurmResources>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -162,6 +164,31 @@ struct RawExecutor {
     keep_task_dirs: Option<String>,
     #[serde(default)]
     retry: RawRetry,
+    slurm: Option<RawSlurmExecutor>,
+}
+
+/// `[executor.slurm]`: the resources every job asks for unless its stage says
+/// otherwise, and how often tarn asks Slurm about its jobs.
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawSlurmExecutor {
+    partition: Option<String>,
+    time_limit: Option<String>,
+    cpus: Option<u32>,
+    memory: Option<String>,
+    sbatch_args: Option<Vec<String>>,
+    poll_max_seconds: Option<f64>,
+}
+
+/// A stage's `slurm` table: the same resources as `[executor.slurm]`, for its jobs.
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawSlurmResources {
+    partition: Option<String>,
+    time_limit: Option<String>,
+    cpus: Option<u32>,
+    memory: Option<String>,
+    sbatch_args: Option<Vec<String>>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -253,6 +280,9 @@ pub struct Stage {
     /// samples first).
     pub pool_limit: u64,
     pub params: serde_json::Value,
+    /// Slurm resources this stage's jobs ask for instead of `[executor.slurm]`'s (only
+    /// with `executor.kind = "slurm"`).
+    pub slurm: Option<SlurmResources>,
 }
 
 /// Rules that end a campaign. Budgets (rounds, energy evaluations, wall time) end it
@@ -351,6 +381,52 @@ pub struct ExecutorSpec {
     pub threads_per_task: u32,
     pub keep_task_dirs: KeepDirs,
     pub retry: RetryPolicy,
+    /// Set when `kind = "slurm"`: the defaults of every job and the polling limit.
+    pub slurm: Option<SlurmSpec>,
+}
+
+/// The Slurm executor's settings (`[executor.slurm]`).
+#[derive(Debug, Clone, PartialEq, Default)]
+pub struct SlurmSpec {
+    /// What a job asks for when its stage does not say.
+    pub defaults: SlurmResources,
+    /// The longest pause between two polls of the queue (the pause starts short and
+    /// grows while nothing changes).
+    pub poll_max: Duration,
+}
+
+/// What one Slurm job asks for. Unset fields are left to the cluster's defaults,
+/// except the time limit, which falls back to the task's timeout, and the CPUs, which
+/// fall back to `executor.threads_per_task`.
+#[derive(Debug, Clone, PartialEq, Default)]
+pub struct SlurmResources {
+    pub partition: Option<String>,
+    /// In whole minutes (Slurm's unit).
+    pub time_limit_minutes: Option<u64>,
+    pub cpus: Option<u32>,
+    /// As Slurm's `--mem` takes it: a number with an optional unit K, M, G or T.
+    pub memory: Option<String>,
+    /// Further `sbatch` arguments, passed as they are (never through a shell).
+    pub sbatch_args: Vec<String>,
+}
+
+impl SlurmResources {
+    /// This table's settings where set, `base`'s elsewhere; stage arguments come after
+    /// the executor's, so that sbatch lets them override.
+    pub fn over(&self, base: &SlurmResources) -> SlurmResources {
+        SlurmResources {
+            partition: self.partition.clone().or_else(|| base.partition.clone()),
+            time_limit_minutes: self.time_limit_minutes.or(base.time_limit_minutes),
+            cpus: self.cpus.or(base.cpus),
+            memory: self.memory.clone().or_else(|| base.memory.clone()),
+            sbatch_args: base
+                .sbatch_args
+                .iter()
+                .chain(&self.sbatch_args)
+                .cloned()
+                .collect(),
+        }
+    }
 }
 
 impl Campaign {
@@ -447,6 +523,26 @@ impl Campaign {
                 .map_err(|e| ctx.err("stop.coverage.cv", e.to_string()))?;
         }
         let executor = check_executor(ctx, raw.executor)?;
+        if executor.slurm.is_none() {
+            let paths = (0..explore.len()).map(|i| format!("explore[{i}]")).chain([
+                "dedup".to_string(),
+                "retrain".into(),
+                "evaluate".into(),
+            ]);
+            let stages = explore
+                .iter()
+                .chain([&dedup])
+                .map(Some)
+                .chain([retrain.as_ref(), evaluate.as_ref()]);
+            for (path, stage) in paths.zip(stages) {
+                if stage.is_some_and(|s| s.slurm.is_some()) {
+                    return Err(ctx.err(
+                        &format!("{path}.slurm"),
+                        "Slurm resources need executor.kind = \"slurm\"; set it, or remove this table",
+                    ));
+                }
+            }
+        }
         let uses_model = explore
             .iter()
             .any(|s| matches!(s.worker.kind(), Some("latent-metropolis" | "generate")));
@@ -478,6 +574,31 @@ impl Campaign {
 /// SHA-256 of a text, as lowercase hex.
 pub fn hash_text(text: &str) -> String {
     hex::encode(Sha256::digest(text.as_bytes()))
+}
+
+/// SHA-256 of what a campaign file says about the science: the file's tables without
+/// `[executor]` and the stages' `slurm` tables (which say where and how tasks run, not
+/// what they compute), in a canonical form (sorted keys, no comments or layout). The
+/// digest uses it, so that the same campaign run locally and through Slurm has the same
+/// digest. `None` when the text is not TOML (a stored file always is).
+pub fn science_hash(source: &str) -> Option<String> {
+    let mut table: toml::Table = source.parse().ok()?;
+    table.remove("executor");
+    for key in ["explore", "dedup", "retrain", "evaluate"] {
+        match table.get_mut(key) {
+            Some(toml::Value::Table(t)) => {
+                t.remove("slurm");
+            }
+            Some(toml::Value::Array(stages)) => {
+                for s in stages.iter_mut().filter_map(toml::Value::as_table_mut) {
+                    s.remove("slurm");
+                }
+            }
+            _ => {}
+        }
+    }
+    let canonical = serde_json::to_string(&toml_to_json(&table)).ok()?;
+    Some(hash_text(&format!("tarn campaign science v1\0{canonical}")))
 }
 
 /// What validation needs to point at the file.
@@ -798,6 +919,23 @@ fn check_stage(
         .timeout_seconds
         .map(|t| positive_seconds(ctx, &format!("{path}.timeout_seconds"), t))
         .transpose()?;
+    let slurm = raw
+        .slurm
+        .map(|r| {
+            check_slurm_resources(
+                ctx,
+                &format!("{path}.slurm"),
+                RawSlurmExecutor {
+                    partition: r.partition,
+                    time_limit: r.time_limit,
+                    cpus: r.cpus,
+                    memory: r.memory,
+                    sbatch_args: r.sbatch_args,
+                    poll_max_seconds: None,
+                },
+            )
+        })
+        .transpose()?;
     Ok(Stage {
         name,
         role,
@@ -807,6 +945,7 @@ fn check_stage(
         timeout,
         pool_limit,
         params: toml_to_json(&raw.params),
+        slurm,
     })
 }
 
@@ -944,12 +1083,22 @@ fn check_stop(ctx: &Ctx, raw: RawStop) -> Result<StopRules, SpecError> {
 
 fn check_executor(ctx: &Ctx, raw: RawExecutor) -> Result<ExecutorSpec, SpecError> {
     let kind = raw.kind.unwrap_or_else(|| "local".into());
-    if kind != "local" {
-        return Err(ctx.err(
-            "executor.kind",
-            format!("'{kind}' is not an executor this build knows (choose: local)"),
-        ));
-    }
+    let slurm = match (kind.as_str(), raw.slurm) {
+        ("local", None) => None,
+        ("local", Some(_)) => {
+            return Err(ctx.err(
+                "executor.slurm",
+                "is set but executor.kind is 'local': set kind = \"slurm\" to run tasks as Slurm jobs, or remove this table",
+            ))
+        }
+        ("slurm", raw) => Some(check_slurm_executor(ctx, raw.unwrap_or_default())?),
+        _ => {
+            return Err(ctx.err(
+                "executor.kind",
+                format!("'{kind}' is not an executor this build knows (choose: local, slurm)"),
+            ))
+        }
+    };
     let max_parallel = raw.max_parallel.unwrap_or(2);
     if max_parallel == 0 || max_parallel > 1024 {
         return Err(ctx.err("executor.max_parallel", "must be between 1 and 1024"));
@@ -1023,7 +1172,146 @@ fn check_executor(ctx: &Ctx, raw: RawExecutor) -> Result<ExecutorSpec, SpecError
             max: Duration::from_secs_f64(max),
             jitter,
         },
+        slurm,
     })
+}
+
+/// `[executor.slurm]`: the job defaults and the polling limit.
+fn check_slurm_executor(ctx: &Ctx, raw: RawSlurmExecutor) -> Result<SlurmSpec, SpecError> {
+    let poll = raw.poll_max_seconds.unwrap_or(10.0);
+    if !(poll.is_finite() && (0.1..=600.0).contains(&poll)) {
+        return Err(ctx.err(
+            "executor.slurm.poll_max_seconds",
+            "must be between 0.1 and 600 seconds",
+        ));
+    }
+    Ok(SlurmSpec {
+        poll_max: Duration::from_secs_f64(poll),
+        defaults: check_slurm_resources(ctx, "executor.slurm", raw)?,
+    })
+}
+
+/// Options tarn sets on every job itself; a campaign may not pass them again, because
+/// tarn depends on them to find, watch and collect its jobs.
+const SLURM_OWN_OPTIONS: &[&str] = &[
+    "--parsable",
+    "--job-name",
+    "-J",
+    "--chdir",
+    "-D",
+    "--output",
+    "-o",
+    "--error",
+    "-e",
+    "--export",
+    "--wrap",
+    "--array",
+    "-a",
+    "--wait",
+    "-W",
+];
+
+/// One table of Slurm resources, at `path` (`executor.slurm` or `STAGE.slurm`).
+fn check_slurm_resources(
+    ctx: &Ctx,
+    path: &str,
+    raw: RawSlurmExecutor,
+) -> Result<SlurmResources, SpecError> {
+    if let Some(p) = &raw.partition {
+        let ok = !p.is_empty()
+            && p.chars()
+                .all(|c| c.is_ascii_alphanumeric() || "-_.,".contains(c));
+        if !ok {
+            return Err(ctx.err(
+                &format!("{path}.partition"),
+                format!("'{p}' is not a partition name (letters, digits, '-', '_', '.'; several separated by ',')"),
+            ));
+        }
+    }
+    let time_limit_minutes = raw
+        .time_limit
+        .as_deref()
+        .map(|t| {
+            slurm_minutes(t).ok_or_else(|| {
+                ctx.err(
+                    &format!("{path}.time_limit"),
+                    format!("'{t}' is not a Slurm time limit: use \"MINUTES\", \"HH:MM:SS\", \"D-HH\" or \"D-HH:MM:SS\" (at least one minute)"),
+                )
+            })
+        })
+        .transpose()?;
+    if let Some(c) = raw.cpus {
+        if c == 0 || c > 4096 {
+            return Err(ctx.err(&format!("{path}.cpus"), "must be between 1 and 4096"));
+        }
+    }
+    if let Some(m) = &raw.memory {
+        let digits = m.trim_end_matches(['K', 'M', 'G', 'T']);
+        let ok = m.len() - digits.len() <= 1
+            && !digits.is_empty()
+            && digits.chars().all(|c| c.is_ascii_digit())
+            && digits.parse::<u64>().is_ok_and(|v| v > 0);
+        if !ok {
+            return Err(ctx.err(
+                &format!("{path}.memory"),
+                format!("'{m}' is not a memory size: a whole number with an optional unit K, M, G or T, e.g. \"4G\""),
+            ));
+        }
+    }
+    let sbatch_args = raw.sbatch_args.unwrap_or_default();
+    for (i, a) in sbatch_args.iter().enumerate() {
+        let at = format!("{path}.sbatch_args[{i}]");
+        if !a.starts_with('-') {
+            return Err(ctx.err(
+                &at,
+                format!("'{a}' is not an option: write each sbatch option as one word with its value, e.g. \"--qos=short\""),
+            ));
+        }
+        let name = a.split('=').next().unwrap_or(a);
+        let own = SLURM_OWN_OPTIONS.iter().any(|o| {
+            name == *o || (o.len() == 2 && name.starts_with(o) && !name.starts_with("--"))
+        });
+        if own {
+            return Err(ctx.err(
+                &at,
+                format!("'{a}': tarn sets {name} itself to watch and collect its jobs; remove it"),
+            ));
+        }
+    }
+    Ok(SlurmResources {
+        partition: raw.partition,
+        time_limit_minutes,
+        cpus: raw.cpus,
+        memory: raw.memory,
+        sbatch_args,
+    })
+}
+
+/// Whole minutes of a Slurm time limit ("M", "M:S", "H:M:S", "D-H", "D-H:M",
+/// "D-H:M:S"), rounded up as Slurm rounds it; `None` when it does not parse or is
+/// under a minute of zero.
+pub fn slurm_minutes(t: &str) -> Option<u64> {
+    let num = |s: &str| -> Option<u64> {
+        (!s.is_empty() && s.len() <= 9 && s.chars().all(|c| c.is_ascii_digit()))
+            .then(|| s.parse().ok())
+            .flatten()
+    };
+    let (days, rest) = match t.split_once('-') {
+        Some((d, r)) => (Some(num(d)?), r),
+        None => (None, t),
+    };
+    let parts: Vec<u64> = rest.split(':').map(num).collect::<Option<_>>()?;
+    let seconds = match (days, parts.as_slice()) {
+        (None, [m]) => m * 60,
+        (None, [m, s]) => m * 60 + s,
+        (None, [h, m, s]) => h * 3600 + m * 60 + s,
+        (Some(d), [h]) => d * 86400 + h * 3600,
+        (Some(d), [h, m]) => d * 86400 + h * 3600 + m * 60,
+        (Some(d), [h, m, s]) => d * 86400 + h * 3600 + m * 60 + s,
+        _ => return None,
+    };
+    let minutes = seconds.div_ceil(60);
+    (minutes > 0).then_some(minutes)
 }
 
 /// Converts a TOML table to JSON for `task.json` (TOML datetimes become strings).

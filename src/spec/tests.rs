@@ -49,7 +49,7 @@ fn broken_files_get_exact_messages() {
         (
             "walkers = 2",
             "walker = 2",
-            "c.toml:14:1: explore[0].walker: unknown field `walker`, expected one of `name`, `kind`, `command`, `walkers`, `restart`, `timeout_seconds`, `pool_limit`, `params`\n   |\n14 | walker = 2\n   | ^^^^^^",
+            "c.toml:14:1: explore[0].walker: unknown field `walker`, expected one of `name`, `kind`, `command`, `walkers`, `restart`, `timeout_seconds`, `pool_limit`, `params`, `slurm`\n   |\n14 | walker = 2\n   | ^^^^^^",
         ),
         (
             "kT = 1.0",

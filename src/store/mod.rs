@@ -17,6 +17,7 @@
 //! | `a` | task key (10 bytes), name, 0, chunk u32 | blob: version byte, then bytes |
 //! | `s` | state id u32 | [`StateRecord`] |
 //! | `n` | round u32 | [`ModelRecord`] (bytes under the retrain task's `a` keys) |
+//! | `j` | round u32, stage u16, walker u32 | [`jobs::JobRecord`] (an attempt out on Slurm) |
 //!
 //! Arrays are stored as `.npy` bytes cut into chunks of [`CHUNK`] bytes: a few large
 //! values per task, not a key per sample. A task's outputs, its record, the states it
@@ -36,6 +37,7 @@
 //! ([`Store::open_read_only`]) then work on that copy, so they never write to the
 //! store at all; the engine ([`Store::open`]) opens the original once the copy passed.
 
+pub mod jobs;
 pub mod records;
 
 use std::path::{Path, PathBuf};
@@ -852,7 +854,10 @@ impl Store {
             h.update(bytes);
         };
         for c in self.campaign_versions()? {
-            feed("campaign", c.hash.as_bytes());
+            // Without [executor] and the stages' slurm tables: where tasks ran is not
+            // science (see `spec::science_hash`).
+            let hash = crate::spec::science_hash(&c.text).unwrap_or(c.hash);
+            feed("campaign", hash.as_bytes());
         }
         for t in self.all_tasks()? {
             if t.status != TaskStatus::Done {
