@@ -12,6 +12,7 @@ pub const BENCHES: &[(&str, &str)] = &[
     ("engine", "orchestration overhead per task, reopen time of a 1000-round store, engine memory"),
     ("energy", "energy-and-force throughput (LJ13 3-D, phi4 16x16) against the measured f64 peak, and an external model through its pipe"),
     ("flow", "RealNVP training and sampling throughput against the measured f32 GEMM peak"),
+    ("discovery", "energy evaluations to every state and to converged free energies, against configuration-space Metropolis and Langevin"),
 ];
 
 /// Runs a benchmark by name.
@@ -30,7 +31,7 @@ pub fn run(what: &str, json: bool, tasks: u32) -> anyhow::Result<u8> {
     }
 }
 
-fn print_rows<T: Serialize>(json: bool, rows: &[T]) {
+pub(crate) fn print_rows<T: Serialize>(json: bool, rows: &[T]) {
     for r in rows {
         let v = serde_json::to_value(r).expect("serializable");
         if json {

@@ -48,7 +48,7 @@ keep_task_dirs = "none"
 }
 
 /// Runs a campaign in this process (so that this process's peak memory is the engine's).
-fn run_in_process(dir: &Path, file: &Path, accept_change: bool) -> anyhow::Result<()> {
+pub(crate) fn run_in_process(dir: &Path, file: &Path, accept_change: bool) -> anyhow::Result<()> {
     let campaign = Campaign::load(file).map_err(|e| anyhow::anyhow!("{e}"))?;
     let opts = RunOptions {
         state_dir: dir.join("state"),

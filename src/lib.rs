@@ -4,6 +4,7 @@
 //! re-exported here (`physics`, `flow`, `stats`), which know nothing of this side.
 
 pub mod bench;
+mod bench_discovery;
 mod bench_engine;
 pub mod cli;
 pub mod engine;

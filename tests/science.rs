@@ -162,43 +162,10 @@ fn the_flow_corrects_a_wrong_start_ratio_on_the_double_well() {
     );
 }
 
-/// Exact basin free energies of Müller–Brown at `kt` by quadrature: the Boltzmann
-/// factor integrated on a grid, each grid point assigned to the basin its quench
-/// (FIRE, steepest-descent-like) ends in — the definition of a basin. Returns
-/// F_s − F_A in kT for the basins in the order of `MULLER_BROWN_MINIMA`.
+/// Exact basin free energies of Müller–Brown at `kt` by quadrature (F_s − F_A in kT, in
+/// the order of `MULLER_BROWN_MINIMA`); see the library function for the method.
 fn muller_brown_basin_free_energies(kt: f64, h: f64) -> [f64; 3] {
-    use tarn::physics::quench::{quench_batch, FireParams};
-    use tarn::physics::EnergyModel;
-    let model = tarn::physics::models::MullerBrown;
-    let (x0, x1, y0, y1) = (-1.9, 1.4, -0.7, 2.3);
-    let nx = ((x1 - x0) / h) as usize;
-    let ny = ((y1 - y0) / h) as usize;
-    let mut pts = Vec::with_capacity(nx * ny * 2);
-    for i in 0..nx {
-        for j in 0..ny {
-            pts.push(x0 + (i as f64 + 0.5) * h);
-            pts.push(y0 + (j as f64 + 0.5) * h);
-        }
-    }
-    let n = nx * ny;
-    let mut e = vec![0.0; n];
-    model.evaluate(&pts, &mut e, None).unwrap();
-    let fire = FireParams {
-        force_tolerance: 1e-4,
-        ..FireParams::default()
-    };
-    let q = quench_batch(&model, &pts, &fire).unwrap();
-    let mut z = [0.0f64; 3];
-    let emin = MULLER_BROWN_MINIMA[0];
-    for (ek, qk) in e.iter().zip(&q.energies) {
-        let basin = MULLER_BROWN_MINIMA
-            .iter()
-            .position(|m| (qk - m).abs() < 1e-3);
-        if let Some(b) = basin {
-            z[b] += (-(ek - emin) / kt).exp();
-        }
-    }
-    [0.0, -(z[1] / z[0]).ln(), -(z[2] / z[0]).ln()]
+    tarn::physics::models::muller_brown::basin_free_energies(kt, h).unwrap()
 }
 
 #[test]
@@ -241,6 +208,20 @@ fn flow_reweighted_muller_brown_basin_free_energies_match_quadrature() {
             "basin {b}: {f} ± {err} vs {}",
             exact[b]
         );
+        // The estimate pooled over the rounds (inverse-variance mean, Birge-scaled error)
+        // must agree too.
+        let pf = s["pooled_free_energy"].as_f64().unwrap();
+        let pe = s["pooled_free_energy_err"].as_f64().unwrap();
+        let n = s["pooled_rounds"].as_u64().unwrap();
+        eprintln!("basin {b}: pooled over {n} rounds {pf:.3} ± {pe:.3} kT");
+        assert!(
+            (pf - exact[b]).abs() < 3.0 * pe + 0.05,
+            "basin {b}: pooled {pf} ± {pe} vs {}",
+            exact[b]
+        );
+        if b > 0 {
+            assert!(n >= 2, "basin {b}: only {n} rounds pooled");
+        }
     }
 }
 

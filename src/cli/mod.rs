@@ -152,7 +152,7 @@ pub enum Command {
     },
     /// Benchmarks that print figures (one JSON object per row with --json).
     #[command(
-        after_help = "Benchmarks:\n  engine  orchestration overhead per task, reopen time, engine memory\n  energy  energy-and-force throughput against the measured f64 peak; an external model through its pipe\n  flow    RealNVP training and sampling throughput against the measured f32 GEMM peak"
+        after_help = "Benchmarks:\n  engine  orchestration overhead per task, reopen time, engine memory\n  energy  energy-and-force throughput against the measured f64 peak; an external model through its pipe\n  flow    RealNVP training and sampling throughput against the measured f32 GEMM peak\n  discovery  energy evaluations to find every state and to converge free energies: tarn's loop against plain Metropolis and Langevin (--system, --seeds, --plots)"
     )]
     Bench {
         /// What to measure: engine, energy or flow.
@@ -162,6 +162,19 @@ pub enum Command {
         /// Tasks to run in the engine benchmark.
         #[arg(long, default_value_t = 200)]
         tasks: u32,
+        /// Discovery benchmark: one system (muller-brown, lj7-surface, phi4-lattice);
+        /// all of them when omitted.
+        #[arg(long)]
+        system: Option<String>,
+        /// Discovery benchmark: independent seeds per method.
+        #[arg(long, default_value_t = 5)]
+        seeds: u32,
+        /// Discovery benchmark: write the cost curves as SVG files into this directory.
+        #[arg(long, value_name = "DIR")]
+        plots: Option<PathBuf>,
+        /// Discovery benchmark: scale every baseline budget (e.g. 0.1 for a quick look).
+        #[arg(long, default_value_t = 1.0)]
+        budget_scale: f64,
     },
 }
 
@@ -300,8 +313,27 @@ fn dispatch(cli: &Cli) -> Result<u8, Failure> {
             println!("{}", store.digest()?);
             Ok(EXIT_OK)
         }
-        Command::Bench { what, json, tasks } => {
-            crate::bench::run(what, *json, *tasks).map_err(|e| Failure::input(format!("{e:#}")))
+        Command::Bench {
+            what,
+            json,
+            tasks,
+            system,
+            seeds,
+            plots,
+            budget_scale,
+        } => {
+            let result = if what == "discovery" {
+                crate::bench_discovery::run(&crate::bench_discovery::Options {
+                    system: system.clone(),
+                    seeds: *seeds,
+                    json: *json,
+                    plots: plots.clone(),
+                    budget_scale: *budget_scale,
+                })
+            } else {
+                crate::bench::run(what, *json, *tasks)
+            };
+            result.map_err(|e| Failure::input(format!("{e:#}")))
         }
         Command::Work { .. } => unreachable!("handled in main"),
     }

@@ -9,6 +9,8 @@ pub mod html;
 pub mod path;
 pub mod plots;
 
+use std::collections::BTreeMap;
+
 use serde::{Deserialize, Serialize};
 
 use crate::store::{RoundRecord, StateRecord, Store, StoreError};
@@ -52,6 +54,15 @@ pub struct StateRow {
     /// In kT, relative to the most populated state; null until estimated.
     pub free_energy: Option<f64>,
     pub free_energy_err: Option<f64>,
+    /// The rounds' estimates pooled (inverse-variance mean, Birge-scaled error; see
+    /// [`pooled_free_energies`]); null until estimated.
+    #[serde(default)]
+    pub pooled_free_energy: Option<f64>,
+    #[serde(default)]
+    pub pooled_free_energy_err: Option<f64>,
+    /// Rounds pooled.
+    #[serde(default)]
+    pub pooled_rounds: usize,
     /// Energy evaluations spent before the discovery (see DEVELOPERS.md).
     pub cost_to_find: u64,
     pub sightings: u64,
@@ -88,6 +99,9 @@ impl From<&StateRecord> for StateRow {
             representative: s.representative.clone(),
             free_energy: last.map(|e| e.free_energy),
             free_energy_err: last.and_then(|e| e.free_energy_err),
+            pooled_free_energy: None,
+            pooled_free_energy_err: None,
+            pooled_rounds: 0,
             cost_to_find: s.found.cost_to_find,
             sightings: s.sightings.values().sum(),
         }
@@ -99,9 +113,65 @@ pub fn tables(store: &Store) -> Result<Tables, StoreError> {
     Ok(Tables {
         campaign: store.meta()?.campaign,
         rounds: store.rounds()?.iter().map(RoundRow::from).collect(),
-        states: store.states()?.iter().map(StateRow::from).collect(),
+        states: state_rows(&store.states()?),
         finished: store.finished()?.map(|d| d.reason),
     })
+}
+
+/// The catalogue's rows, each with its pooled free energy.
+fn state_rows(states: &[StateRecord]) -> Vec<StateRow> {
+    let pooled = pooled_free_energies(states);
+    states
+        .iter()
+        .zip(pooled)
+        .map(|(s, p)| {
+            let mut row = StateRow::from(s);
+            if let Some(p) = p {
+                row.pooled_free_energy = Some(p.value);
+                row.pooled_free_energy_err = Some(p.err);
+                row.pooled_rounds = p.n;
+            }
+            row
+        })
+        .collect()
+}
+
+/// Each state's free energy pooled over rounds: the rounds since the reference state
+/// (the most populated one, F = 0) last changed, combined by
+/// [`crate::stats::pool`] — the inverse-variance mean, its error scaled by the Birge
+/// ratio when the rounds scatter more than their error bars allow. Rounds are
+/// independent draws when each round's evaluate samples afresh (flow generation); for
+/// trajectory-based evaluation the Birge scale is what keeps the pooled bar honest.
+pub fn pooled_free_energies(states: &[StateRecord]) -> Vec<Option<crate::stats::Pooled>> {
+    let mut reference: BTreeMap<u32, u32> = BTreeMap::new();
+    for s in states {
+        for e in &s.estimates {
+            if e.free_energy == 0.0 {
+                reference.entry(e.round).or_insert(s.id);
+            }
+        }
+    }
+    let Some((_, &current)) = reference.iter().next_back() else {
+        return vec![None; states.len()];
+    };
+    let since = reference
+        .iter()
+        .rev()
+        .take_while(|(_, &id)| id == current)
+        .last()
+        .map_or(0, |(&r, _)| r);
+    states
+        .iter()
+        .map(|s| {
+            let pairs: Vec<(f64, f64)> = s
+                .estimates
+                .iter()
+                .filter(|e| e.round >= since && reference.get(&e.round) == Some(&current))
+                .map(|e| (e.free_energy, e.free_energy_err.unwrap_or(f64::NAN)))
+                .collect();
+            crate::stats::pool(&pairs)
+        })
+        .collect()
 }
 
 /// Formats the rounds table for people.
@@ -144,13 +214,18 @@ pub fn rounds_text(t: &Tables) -> String {
 
 /// Formats the catalogue for people.
 pub fn states_text(t: &Tables) -> String {
-    let mut out = String::from("state        energy  found in  task                     seed                  cost to find  sightings  F [kT]\n");
+    let mut out = String::from("state        energy  found in  task                     seed                  cost to find  sightings  F last round [kT]  F pooled [kT]\n");
     for s in &t.states {
         let f = match (s.free_energy, s.free_energy_err) {
             (Some(f), Some(e)) => format!("{f:.3} ± {e:.3}"),
             (Some(f), None) => format!("{f:.3}"),
             _ => "-".into(),
         };
+        let pooled = match (s.pooled_free_energy, s.pooled_free_energy_err) {
+            (Some(f), Some(e)) => format!("{f:.3} ± {e:.3} ({} rounds)", s.pooled_rounds),
+            _ => "-".into(),
+        };
+        let f = format!("{f:<17}  {pooled}");
         out.push_str(&format!(
             "{:>5}  {:>12.6}  round {:>3}  {:<24} {:<20}  {:>12}  {:>9}  {}\n",
             s.id,

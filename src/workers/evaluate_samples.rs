@@ -4,22 +4,27 @@
 //! weights (well-tempered metadynamics, reweighted per Tiwary & Parrinello, J. Phys.
 //! Chem. B 119, 736, 2015). Samples are assigned to states by quench, as in `reweight`.
 //!
-//! Both treat the round's samples as independent. Trajectory frames are correlated, so
-//! the bootstrap error bars are lower bounds unless the explorers save frames at least a
-//! correlation time apart (`save_stride`); for `mbar` the bootstrap also holds the
-//! states' free energies f_k fixed.
+//! Trajectory frames are correlated, so both bootstrap in blocks of consecutive frames
+//! (the moving-block bootstrap; `bootstrap_block` frames, by default n^(1/3) of the
+//! round's n frames). Correlations longer than a block still make the bars too small;
+//! the estimate pooled over rounds (`tarn states`, Birge-scaled) shows it when they do.
+//! For `mbar` the bootstrap also holds the states' free energies f_k fixed.
 
 use serde::Deserialize;
 
 use super::states::{assign_by_quench, free_energy_arrays, Matching};
 use super::{rng, Output, Task};
-use crate::stats::{kish_ess, state_free_energies, BootstrapOptions, Mbar, MbarOptions};
+use crate::stats::{
+    default_block_length, kish_ess, state_free_energies, BootstrapOptions, Mbar, MbarOptions,
+};
 
 /// Parameters shared by the sample-reweighting kinds.
 #[derive(Debug, Deserialize)]
 #[serde(deny_unknown_fields, default)]
 struct SampleParams {
     bootstrap: usize,
+    /// Frames per bootstrap block; 0 chooses n^(1/3).
+    bootstrap_block: usize,
     force_tolerance: f64,
     max_steps: u64,
     energy_tolerance: f64,
@@ -31,6 +36,7 @@ impl Default for SampleParams {
         let m = Matching::default();
         SampleParams {
             bootstrap: 400,
+            bootstrap_block: 0,
             force_tolerance: m.force_tolerance,
             max_steps: m.max_steps,
             energy_tolerance: m.energy_tolerance,
@@ -110,8 +116,13 @@ fn estimate(task: &Task, p: &SampleParams, log_w: &[f64]) -> Result<Output, Stri
         &matching,
     )?;
     let ids: Vec<u32> = (0..k as u32).collect();
+    let block = match p.bootstrap_block {
+        0 => default_block_length(log_w.len()),
+        b => b,
+    };
     let opts = BootstrapOptions {
         n_replicates: p.bootstrap,
+        block,
         ..BootstrapOptions::default()
     };
     let est = state_free_energies(log_w, &labels, &ids, &opts, &mut rng(task))
@@ -125,6 +136,8 @@ fn estimate(task: &Task, p: &SampleParams, log_w: &[f64]) -> Result<Output, Stri
     out.arrays.insert("free_energy_err".into(), ferr);
     let ess = kish_ess(log_w).map_err(|e| format!("ESS: {e}"))?;
     out.metrics.insert("ess".into(), Some(ess));
+    out.metrics
+        .insert("bootstrap_block".into(), Some(block as f64));
     out.metrics
         .insert("ess_fraction".into(), Some(ess / log_w.len().max(1) as f64));
     out.metrics

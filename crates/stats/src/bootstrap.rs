@@ -3,7 +3,10 @@
 //!
 //! A replicate resamples the N samples with replacement (Efron's nonparametric
 //! bootstrap), which is valid for independent samples such as a flow's generated
-//! batch. Replicate values may be ±inf (a state with no weight in that replicate has
+//! batch. For trajectory frames, which are correlated, [`BootstrapOptions::block`] > 1
+//! makes it the moving-block bootstrap (Künsch, Ann. Statist. 17, 1217, 1989): a
+//! replicate is made of randomly placed runs of `block` consecutive samples, so that
+//! correlations shorter than a block are kept inside the replicates. Replicate values may be ±inf (a state with no weight in that replicate has
 //! F = +inf); they are carried honestly into the summary instead of becoming NaN.
 
 use rand::Rng;
@@ -42,6 +45,9 @@ pub struct BootstrapOptions {
     pub confidence: f64,
     /// How the interval is formed from the replicates.
     pub method: IntervalMethod,
+    /// Consecutive samples drawn together (1: Efron's bootstrap of independent samples;
+    /// more: the moving-block bootstrap for correlated frames).
+    pub block: usize,
 }
 
 impl Default for BootstrapOptions {
@@ -54,6 +60,7 @@ impl Default for BootstrapOptions {
             n_replicates: 400,
             confidence: 0.95,
             method: IntervalMethod::StandardError,
+            block: 1,
         }
     }
 }
@@ -67,8 +74,21 @@ impl BootstrapOptions {
                 reason: format!("must lie strictly between 0 and 1, got {}", self.confidence),
             });
         }
+        if self.block == 0 {
+            return Err(StatsError::InvalidParameter {
+                name: "block",
+                reason: "must be at least 1".into(),
+            });
+        }
         Ok(())
     }
+}
+
+/// A block length for the moving-block bootstrap of `n` correlated frames: n^(1/3),
+/// rounded (the rate Hall, Horowitz & Jing, Biometrika 82, 561, 1995 show is optimal
+/// for variance estimates; the constant in front is common practice, not derived).
+pub fn default_block_length(n: usize) -> usize {
+    ((n as f64).cbrt().round() as usize).max(1)
 }
 
 /// A confidence interval; either end may be infinite (see [`IntervalMethod`]).
@@ -191,6 +211,76 @@ pub(crate) fn resample_indices<R: Rng + ?Sized>(rng: &mut R, indices: &mut [usiz
     }
 }
 
+/// Fills `indices` with runs of `block` consecutive indices starting at uniform
+/// positions in 0..=N−block, the last run cut to fit; `block` = 1 is exactly
+/// [`resample_indices`] (the same draws from the same generator).
+pub(crate) fn resample_blocks<R: Rng + ?Sized>(rng: &mut R, indices: &mut [usize], block: usize) {
+    let n = indices.len();
+    let block = block.clamp(1, n.max(1));
+    if block == 1 {
+        return resample_indices(rng, indices);
+    }
+    for run in indices.chunks_mut(block) {
+        let start = rng.gen_range(0..=n - block);
+        for (k, slot) in run.iter_mut().enumerate() {
+            *slot = start + k;
+        }
+    }
+}
+
+#[cfg(test)]
+mod block_tests {
+    use super::*;
+    use rand::SeedableRng;
+
+    #[test]
+    fn block_one_is_the_plain_bootstrap_and_blocks_are_consecutive_runs() {
+        let mut a = rand_chacha::ChaCha8Rng::seed_from_u64(3);
+        let mut b = rand_chacha::ChaCha8Rng::seed_from_u64(3);
+        let (mut x, mut y) = (vec![0; 50], vec![0; 50]);
+        resample_indices(&mut a, &mut x);
+        resample_blocks(&mut b, &mut y, 1);
+        assert_eq!(x, y);
+        resample_blocks(&mut b, &mut y, 7);
+        for run in y.chunks(7) {
+            assert!(run.windows(2).all(|w| w[1] == w[0] + 1), "{run:?}");
+            assert!(*run.last().unwrap() < 50);
+        }
+        assert_eq!(default_block_length(1000), 10);
+        assert_eq!(default_block_length(1), 1);
+    }
+
+    /// An AR(1) series with correlation 0.9 has a mean whose true standard error is
+    /// about √((1+φ)/(1−φ)) ≈ 4.36 times the naive one. Efron's bootstrap reports the
+    /// naive one; blocks of 50 recover most of the factor.
+    #[test]
+    fn blocks_see_the_correlation_that_the_plain_bootstrap_misses() {
+        use rand_distr::{Distribution, StandardNormal};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(11);
+        let phi: f64 = 0.9;
+        let n = 20_000;
+        let mut x = vec![0.0; n];
+        for i in 1..n {
+            let z: f64 = StandardNormal.sample(&mut rng);
+            x[i] = phi * x[i - 1] + (1.0 - phi * phi).sqrt() * z;
+        }
+        let se_of = |block: usize, rng: &mut rand_chacha::ChaCha8Rng| {
+            let mut idx = vec![0; n];
+            let means: Vec<f64> = (0..300)
+                .map(|_| {
+                    resample_blocks(rng, &mut idx, block);
+                    idx.iter().map(|&i| x[i]).sum::<f64>() / n as f64
+                })
+                .collect();
+            standard_deviation(&means)
+        };
+        let plain = se_of(1, &mut rng);
+        let blocked = se_of(50, &mut rng);
+        let ratio = blocked / plain;
+        assert!((3.3..5.0).contains(&ratio), "ratio {ratio}");
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -222,6 +312,7 @@ mod tests {
             n_replicates: 4,
             confidence: 0.5,
             method: IntervalMethod::Percentile,
+            block: 1,
         };
         let mut reps = [1.0, f64::INFINITY, 2.0, 3.0];
         let s = summarise(2.0, &mut reps, &opts);

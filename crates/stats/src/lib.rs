@@ -11,11 +11,14 @@ mod linalg;
 pub mod logspace;
 pub mod mbar;
 pub mod metad;
+pub mod pool;
 pub mod profile;
 pub mod states;
 pub mod stop;
 
-pub use bootstrap::{standard_normal_quantile, BootstrapOptions, Interval, IntervalMethod};
+pub use bootstrap::{
+    default_block_length, standard_normal_quantile, BootstrapOptions, Interval, IntervalMethod,
+};
 pub use error::{Result, StatsError};
 pub use logspace::{
     ess_fraction, importance_log_weights, kish_ess, log_partition_estimate, logsumexp,
@@ -25,6 +28,7 @@ pub use mbar::{Expectations, FreeEnergyDifferences, Mbar, MbarOptions};
 pub use metad::{
     final_bias_log_weights, reweighting_offset, tiwary_parrinello_log_weights, well_tempered_offset,
 };
+pub use pool::{pool, Pooled};
 pub use profile::{
     compare_profiles, free_energy_profile, reference_profile, Alignment, Bins, Profile,
     ProfileComparison,

@@ -14,7 +14,7 @@ use std::collections::BTreeMap;
 use rand::Rng;
 use serde::{Deserialize, Serialize};
 
-use crate::bootstrap::{resample_indices, summarise, BootstrapOptions, Interval};
+use crate::bootstrap::{resample_blocks, summarise, BootstrapOptions, Interval};
 use crate::error::{check_same_len, Result, StatsError};
 use crate::logspace::{checked_total, kish_ess};
 
@@ -121,7 +121,7 @@ pub fn state_free_energies<R: Rng + ?Sized>(
     let mut p_reps = vec![Vec::with_capacity(opts.n_replicates); n_states];
     let mut indices = vec![0usize; log_w.len()];
     for _ in 0..opts.n_replicates {
-        resample_indices(rng, &mut indices);
+        resample_blocks(rng, &mut indices, opts.block);
         let rep = groups.log_slot_weights(&scaled, indices.iter().copied());
         let rep_total = crate::logspace::logsumexp(&rep);
         for s in 0..n_states {

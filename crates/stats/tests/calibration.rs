@@ -54,6 +54,7 @@ fn trial(seed: u64) -> Trial {
             n_replicates: 400,
             confidence: 0.95,
             method,
+            block: 1,
         };
         let mut boot_rng = ChaCha8Rng::seed_from_u64(1_000_000 + seed);
         let est = state_free_energies(&lw, &labels, &[0, 1], &opts, &mut boot_rng).unwrap();
