@@ -675,3 +675,129 @@ keep_task_dirs = "none"
     ));
     assert_eq!(submitted, (n + 1 + wide + 1) as usize);
 }
+
+/// Ctrl-C with no terminal: tarn leaves its jobs queued and running, exits 3 at once,
+/// and `resume` waits for those very jobs instead of submitting them again.
+#[test]
+fn ctrl_c_without_a_terminal_leaves_the_jobs_and_resume_collects_them() {
+    let Some(sbatch) = slurm() else { return };
+    let c = Cluster::new(&sbatch);
+    let text = faulty_text(&c.env, "sleave", "slow", 1, "").replace("walkers = 2", "walkers = 4");
+    let file = c.env.write("l.toml", &text);
+    let child = c.spawn(&["run", file.to_str().unwrap()]);
+    c.wait_queue(Duration::from_secs(60), "a job running", |q| {
+        q.iter().any(|(_, _, s)| s == "RUNNING")
+    });
+    signal(&child, 2);
+    let t = Instant::now();
+    let r = wait_with_limit(child, Duration::from_secs(30));
+    r.code(3);
+    assert!(
+        t.elapsed() < Duration::from_secs(5),
+        "tarn waited for its jobs: {:?}",
+        t.elapsed()
+    );
+    assert!(
+        r.stderr.contains("Slurm job(s) queued or running")
+            && r.stderr.contains("`tarn resume sleave` waits for them"),
+        "{}",
+        r.stderr
+    );
+    // Nothing was cancelled.
+    let q = c.queue();
+    assert!(q.iter().all(|(_, _, s)| s != "CANCELLED"), "{q:?}");
+    let before = c.submissions().len();
+    c.tarn(&["resume", "sleave", "--quiet"]).code(0);
+    let subs = c.submissions();
+    // Only tasks never submitted before were submitted now (the dedup task and any
+    // walker whose turn had not come): every name once.
+    let distinct: std::collections::BTreeSet<_> = subs.iter().collect();
+    assert_eq!(distinct.len(), subs.len(), "{subs:?}");
+    assert_eq!(subs.len(), 5, "{subs:?} ({before} before the resume)");
+}
+
+/// Ctrl-C on a terminal: tarn asks, and "y" cancels the running jobs (tarn's own
+/// cancellation, recorded as such); resume runs them again as second attempts.
+#[test]
+fn ctrl_c_on_a_terminal_asks_and_yes_cancels_the_jobs() {
+    let Some(sbatch) = slurm() else { return };
+    if Command::new("script").arg("--version").output().is_err() {
+        loud(
+            "SKIPPED the terminal Ctrl-C test: util-linux `script` (a pseudo-terminal) is missing",
+        );
+        return;
+    }
+    let c = Cluster::new(&sbatch);
+    let text = faulty_text(&c.env, "sask", "hang", 2, "").replace("walkers = 2", "walkers = 1");
+    let file = c.env.write("a.toml", &text);
+    // `script` runs tarn on a pseudo-terminal and forwards our pipe to it.
+    let inner = format!(
+        "{} run {} --quiet",
+        env!("CARGO_BIN_EXE_tarn"),
+        file.display()
+    );
+    let mut child = Command::new("script")
+        .args(["-qfec", &inner, "/dev/null"])
+        .env("TARN_STATE", c.env.state())
+        .env("PATH", &c.path)
+        .current_dir(c.env.path())
+        .stdin(std::process::Stdio::piped())
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .expect("script");
+    let q = c.wait_queue(Duration::from_secs(60), "round 2's job running", |q| {
+        q.iter()
+            .any(|(_, n, s)| n.starts_with("sask.r0002.walk.w000.a1.") && s == "RUNNING")
+    });
+    let status: serde_json::Value = serde_json::from_str(
+        &std::fs::read_to_string(c.env.state().join("sask/status.json")).unwrap(),
+    )
+    .unwrap();
+    let pid = status["pid"].as_i64().unwrap() as i32;
+    // SAFETY: kill(2) on the tarn process this test started (through `script`).
+    unsafe { kill(pid, 2) };
+    std::thread::sleep(Duration::from_millis(500));
+    {
+        use std::io::Write;
+        let stdin = child.stdin.as_mut().unwrap();
+        stdin.write_all(b"y\n").unwrap();
+        stdin.flush().unwrap();
+    }
+    let r = wait_with_limit(child, Duration::from_secs(60));
+    let shown = format!("{}{}", r.stdout, r.stderr);
+    assert!(
+        shown.contains(
+            "Cancel the 1 Slurm job(s) of campaign sask that are queued or running? [y/N]"
+        ),
+        "{shown}"
+    );
+    assert!(shown.contains("cancelling the Slurm jobs"), "{shown}");
+    let (id, _, _) = q
+        .iter()
+        .find(|(_, n, _)| n.starts_with("sask.r0002.walk.w000.a1."))
+        .unwrap()
+        .clone();
+    let q = c.queue();
+    assert!(
+        q.iter().any(|(i, _, s)| *i == id && s == "CANCELLED"),
+        "{q:?}"
+    );
+    std::fs::write(c.env.path().join("sask.mode"), "ok").unwrap();
+    c.tarn(&["resume", "sask", "--quiet"]).code(0);
+    let subs = c.submissions();
+    assert!(
+        subs.iter()
+            .any(|s| s.starts_with("sask.r0002.walk.w000.a2.")),
+        "{subs:?}"
+    );
+    let cancelled = events_with(&c.env, "sask", "attempt cancelled");
+    assert!(
+        !cancelled.is_empty(),
+        "tarn did not record its cancellation"
+    );
+}
+
+extern "C" {
+    fn kill(pid: i32, sig: i32) -> i32;
+}

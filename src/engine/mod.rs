@@ -1033,7 +1033,7 @@ async fn batch_stop_levels(
         if raw == StopLevel::AfterRunning && interactive && !asked {
             asked = true;
             tx.send_replace(StopLevel::AfterRunning);
-            ctx.monitor.line(&format!(
+            ctx.monitor.ask(&format!(
                 "interrupt: no new jobs will be submitted. Cancel the {in_flight} Slurm job(s) of campaign {name} that are queued or running? [y/N] (N leaves them; `tarn resume {name}` waits for them)"
             ));
             let tx = tx.clone();
@@ -1051,7 +1051,7 @@ async fn batch_stop_levels(
                     StopLevel::Detach
                 };
                 if *tx.borrow() < level {
-                    ctx.monitor.line(if yes {
+                    ctx.monitor.ask(if yes {
                         "cancelling the Slurm jobs (scancel), then stopping"
                     } else {
                         "leaving the Slurm jobs queued or running; stopping"

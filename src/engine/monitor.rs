@@ -146,6 +146,16 @@ impl Monitor {
         }
     }
 
+    /// Prints a question for the user above the progress view, even with `--quiet`
+    /// (a question the user cannot see cannot be answered).
+    pub fn ask(&self, text: &str) {
+        let inner = self.inner.lock().expect("monitor lock");
+        match &inner.bars {
+            Some(b) => b.multi.suspend(|| eprintln!("{text}")),
+            None => eprintln!("{text}"),
+        }
+    }
+
     /// Records an event: log, render, snapshot.
     pub fn emit(&self, event: Event) {
         let text = self.apply(&event);
