@@ -1,9 +1,15 @@
 //! The fault matrix: one test per way the world can hurt a running campaign — a worker
 //! killed by a signal, a worker flooding its output, result files cut off mid-write,
-//! a read-only store, a damaged store file, two `tarn run` racing to create one
-//! campaign, shell metacharacters in a worker's arguments and parameters, outputs that
-//! are symbolic links out of the task directory. Each test asserts a message a user can
-//! act on and a store that is intact afterwards (its digest, its rounds, or its bytes).
+//! a read-only store, a damaged store file, read commands that must not write, two
+//! `tarn run` racing to create one campaign, shell metacharacters in a worker's
+//! arguments and parameters, outputs that are symbolic links out of the task directory
+//! or FIFOs, the disk filling up during a commit, the clock jumping. Each test asserts
+//! a message a user can act on and a store that is intact afterwards (its digest, its
+//! rounds, or its bytes).
+//!
+//! Two rows need tools from outside the test: the full disk mounts a tmpfs (root), the
+//! clock jump preloads Debian's libfaketime. Without them they say SKIPPED; with
+//! `TARN_REQUIRE_FAULT_TOOLS=1` (as CI sets) they fail instead.
 //!
 //! The workers are small Python programs (numpy only) written into each test's
 //! temporary directory; the campaign file names them by relative paths, so that two
@@ -92,6 +98,35 @@ if mode == "symlink_result" and late:
 if mode == "fifo" and late:
     os.mkfifo("out/result.json")
     sys.exit(0)
+if mode == "fill" and task["round"] == 2 and task["walker"] == 0:
+    # A 2 MiB output, then fill the file system that holds the task directory (the
+    # campaign's own small tmpfs) to within 256 KiB: the output is written, but
+    # committing it into the store must run out of space.
+    np.save("out/cv.npy", np.zeros((1, 1 << 18)))
+    outputs["cv"] = "out/cv.npy"
+    filler = os.path.join(os.environ["TARN_TASK_DIR"], "..", "..", "..", "..", "filler")
+    st = os.statvfs(".")
+    spare = st.f_bavail * st.f_frsize - (256 << 10)
+    with open(filler, "wb") as f:
+        while spare > 0:
+            n = min(spare, 1 << 20)
+            f.write(b"\1" * n)
+            spare -= n
+if mode == "clock":
+    # The clock of tarn (not of this worker) is the file clock.txt, read through
+    # libfaketime. Round 2 moves it 30 days back and its first attempt of walker 0
+    # hangs past the timeout; round 3 moves it 400 days ahead while walker 0 works
+    # for 2 s, well inside its timeout.
+    import time
+    clock = os.path.join(outside, "clock.txt")
+    attempt = os.path.basename(os.environ["TARN_TASK_DIR"])
+    if task["round"] == 2 and task["walker"] == 0:
+        open(clock, "w").write("-30d\n")
+        if attempt == "a1":
+            time.sleep(600)
+    if task["round"] == 3 and task["walker"] == 0:
+        open(clock, "w").write("+400d\n")
+        time.sleep(2)
 tmp = "out/result.json.tmp"
 open(tmp, "w").write(result_text(outputs))
 os.rename(tmp, "out/result.json")
@@ -782,4 +817,165 @@ fn a_fifo_as_result_json_fails_the_attempt_instead_of_hanging() {
     let r = wait_with_limit(child, Duration::from_secs(40));
     assert_round_two_failed(&r, "task r0002.walk.w000: out/result.json");
     assert_eq!(rounds_json(&env).len(), 1);
+}
+
+/// A tmpfs mounted on a directory for the length of a test (root only), unmounted
+/// when dropped.
+struct Tmpfs(PathBuf);
+
+impl Tmpfs {
+    /// Mounts a tmpfs of `size` (e.g. `"12m"`) on `dir`, or says why it cannot.
+    fn mount(dir: &Path, size: &str) -> Result<Tmpfs, String> {
+        std::fs::create_dir_all(dir).unwrap();
+        let out = std::process::Command::new("mount")
+            .args(["-t", "tmpfs", "-o", &format!("size={size}"), "tmpfs"])
+            .arg(dir)
+            .output()
+            .map_err(|e| format!("cannot run mount: {e}"))?;
+        if out.status.success() {
+            Ok(Tmpfs(dir.to_path_buf()))
+        } else {
+            Err(String::from_utf8_lossy(&out.stderr).trim().to_string())
+        }
+    }
+}
+
+impl Drop for Tmpfs {
+    fn drop(&mut self) {
+        let _ = std::process::Command::new("umount")
+            .arg("-l")
+            .arg(&self.0)
+            .status();
+    }
+}
+
+/// Whether a missing facility must fail the test instead of skipping it (CI sets
+/// `TARN_REQUIRE_FAULT_TOOLS=1`).
+fn required() -> bool {
+    std::env::var_os("TARN_REQUIRE_FAULT_TOOLS").is_some_and(|v| v == "1")
+}
+
+/// Row: the disk filling up during a commit. The campaign directory is a 12 MiB tmpfs;
+/// in round 2 a worker writes a 2 MiB output and then fills the file system to within
+/// 256 KiB, so that committing the output runs out of space. tarn stops with a message
+/// naming the store and the cause; the store still opens and holds round 1 exactly;
+/// once the space is freed, `resume` finishes the campaign with the digest of a
+/// campaign that never ran out of space.
+#[test]
+fn a_disk_filling_up_during_a_commit_keeps_the_last_round_and_resume_works() {
+    let setup = Setup::default();
+    let env = Env::new();
+    let file = campaign(&env, "fill", &setup);
+    let dir = env.state().join("faults");
+    let _mount = match Tmpfs::mount(&dir, "12m") {
+        Ok(m) => m,
+        Err(why) if !required() => {
+            eprintln!("SKIPPED: cannot mount a tmpfs ({why}); run as root to test a full disk");
+            return;
+        }
+        Err(why) => panic!("cannot mount a tmpfs: {why}"),
+    };
+    let r = run(&env, &file);
+    assert_ne!(r.code, 0, "the run should stop when the disk is full");
+    eprintln!("the full-disk run said: {}", r.stderr.trim());
+    assert!(
+        r.stderr.contains("No space left on device")
+            && r.stderr.contains(&format!("store {}", dir.display())),
+        "the message should name the store and the cause (exit {}):\n{}",
+        r.code,
+        r.stderr
+    );
+    // The last committed round survives, and reading it needs no space on the full
+    // file system (read commands work on a copy in TMPDIR).
+    let rounds = rounds_json(&env);
+    assert_eq!(rounds.len(), 1, "{rounds:?}");
+    assert_eq!(rounds[0]["round"], 1);
+    let digest_full = env.digest("faults");
+    // Resuming while the disk is still full fails cleanly and loses nothing.
+    let again = env.tarn(&["resume", "faults", "--quiet"]);
+    assert_ne!(again.code, 0, "{}", again.stderr);
+    assert_eq!(env.digest("faults"), digest_full);
+    // Space freed: resume finishes, and the result is the clean campaign's.
+    std::fs::remove_file(dir.join("filler")).unwrap();
+    set_mode(&env, "ok");
+    env.tarn(&["resume", "faults", "--quiet"]).code(0);
+    let after = rounds_json(&env);
+    assert_eq!(after.len(), 3);
+    assert_eq!(after[0], rounds[0]);
+    assert_eq!(env.digest("faults"), clean_digest(&setup));
+}
+
+/// The libfaketime library of Debian's `faketime` package.
+const FAKETIME_LIB: &str = "/usr/lib/x86_64-linux-gnu/faketime/libfaketimeMT.so.1";
+
+/// Row: the clock jumping. tarn runs with its wall clock (CLOCK_REALTIME) taken from a
+/// file through libfaketime, the monotonic clock left alone, as an NTP step or an
+/// administrator's `date -s` leaves it. In round 2 the clock jumps 30 days back while
+/// a worker hangs: the hang is still ended by its 6 s timeout. In round 3 it jumps 400
+/// days ahead while a worker works for 2 s: nothing times out early. The campaign
+/// finishes with exactly one failed attempt (the hang), the digest of a clean campaign,
+/// and the event log's (informational) times showing both jumps.
+#[test]
+fn the_clock_jumping_back_and_ahead_changes_no_timeout_and_no_result() {
+    if !Path::new(FAKETIME_LIB).exists() {
+        assert!(
+            !required(),
+            "{FAKETIME_LIB} is missing (apt-get install faketime)"
+        );
+        eprintln!("SKIPPED: {FAKETIME_LIB} is missing (apt-get install faketime)");
+        return;
+    }
+    let setup = Setup {
+        rounds: 3,
+        timeout: 6.0,
+        ..Setup::default()
+    };
+    let env = Env::new();
+    let file = campaign(&env, "clock", &setup);
+    let clock = env.write("clock.txt", "+0\n");
+    let started = Instant::now();
+    let mut cmd = env.cmd(&["run", file.to_str().unwrap(), "--quiet"]);
+    cmd.env("LD_PRELOAD", FAKETIME_LIB)
+        .env("FAKETIME_TIMESTAMP_FILE", &clock)
+        .env("FAKETIME_NO_CACHE", "1")
+        .env("FAKETIME_DONT_FAKE_MONOTONIC", "1")
+        .stdin(Stdio::null())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped());
+    let r = wait_with_limit(cmd.spawn().unwrap(), Duration::from_secs(120));
+    r.code(0);
+    assert!(
+        started.elapsed() < Duration::from_secs(100),
+        "the hang was not ended by its timeout"
+    );
+    assert_eq!(rounds_json(&env).len(), 3);
+    let out = env.path().join("export");
+    env.tarn(&["export", "faults", "--out", out.to_str().unwrap()])
+        .code(0);
+    let events: Vec<serde_json::Value> =
+        serde_json::from_str(&std::fs::read_to_string(out.join("events.json")).unwrap()).unwrap();
+    let failed: Vec<&serde_json::Value> = events
+        .iter()
+        .filter(|e| e["kind"] == "attempt_failed")
+        .collect();
+    assert_eq!(failed.len(), 1, "{failed:?}");
+    let msg = failed[0]["message"].as_str().unwrap();
+    assert!(
+        msg.contains("r0002.walk.w000") && msg.contains("past its timeout"),
+        "{msg}"
+    );
+    // The jumps really reached tarn: its event times go back about 30 days and then
+    // ahead about 400 days from the creation time.
+    let t0 = events[0]["unix"].as_f64().unwrap();
+    let day = 86400.0;
+    let times: Vec<f64> = events.iter().map(|e| e["unix"].as_f64().unwrap()).collect();
+    assert!(
+        times.iter().any(|t| *t < t0 - 29.0 * day),
+        "no event time shows the jump back: {times:?}"
+    );
+    assert!(
+        times.iter().any(|t| *t > t0 + 300.0 * day),
+        "no event time shows the jump ahead: {times:?}"
+    );
+    assert_eq!(env.digest("faults"), clean_digest(&setup));
 }
