@@ -238,7 +238,12 @@ fn run_case(case: &Case, opts: &Options) -> anyhow::Result<()> {
     }
     let summary = summarise(case, &rows, budget);
     crate::bench::print_rows(opts.json, &summary);
-    if let Some(dir) = &opts.plots {
+    if opts.plots.is_some() && exact.is_none() {
+        eprintln!(
+            "{}: no exact free energies, so no cost curve to draw (discovery only)",
+            case.name
+        );
+    } else if let Some(dir) = &opts.plots {
         std::fs::create_dir_all(dir).with_context(|| format!("{}", dir.display()))?;
         let file = dir.join(format!("discovery-{}.svg", case.name));
         plot_curves(case, &rows, &file)?;
