@@ -14,6 +14,11 @@ Parameters (the stage's `params` table):
                       hydrogens' bond vibrations need a short step)
   friction_per_ps     Langevin friction in 1/ps (default 1)
   save_stride         save a frame every this many steps (default 500)
+  superpose           if true, each frame is moved rigidly onto the start structure
+                      (centre at the origin, then the rotation of least RMSD, Kabsch
+                      1976); the energy does not change, but the frames lose the free
+                      rotation and drift that a flow would otherwise have to learn
+                      (default false)
 
 Output: `samples` [n, 3 * atoms] in angstrom and `energies` [n] in kJ/mol (units of
 peptide.py). Every random number comes from the task's seed, so a retried task gives
@@ -31,6 +36,17 @@ import openmm.unit as unit
 import peptide
 
 
+def superpose(x, reference):
+    """Frame x (flat, A) moved rigidly onto the reference: both centred, then rotated by
+    the proper rotation of least RMSD (Kabsch, Acta Cryst. A32, 922, 1976)."""
+    p = x.reshape(-1, 3) - x.reshape(-1, 3).mean(axis=0)
+    q = reference.reshape(-1, 3) - reference.reshape(-1, 3).mean(axis=0)
+    u, _, vt = np.linalg.svd(p.T @ q)
+    d = np.sign(np.linalg.det(u @ vt))
+    rotation = u @ np.diag([1.0, 1.0, d]) @ vt
+    return (p @ rotation).reshape(-1)
+
+
 def run(task, pdb_path):
     """The frames and energies of one walker, and the number of force evaluations."""
     params = task.get("params") or {}
@@ -39,6 +55,7 @@ def run(task, pdb_path):
     dt_fs = float(params.get("dt_fs", 1.0))
     friction = float(params.get("friction_per_ps", 1.0))
     stride = int(params.get("save_stride", 500))
+    align = bool(params.get("superpose", False))
     if n_steps < 1 or stride < 1 or dt_fs <= 0 or friction <= 0 or factor <= 0:
         raise ValueError("n_steps, save_stride, dt_fs, friction_per_ps and temperature_factor "
                          "must be positive")
@@ -57,7 +74,8 @@ def run(task, pdb_path):
     for _ in range(n_steps // stride):
         integrator.step(stride)
         state = context.getState(getPositions=True, getEnergy=True)
-        frames.append(state.getPositions(asNumpy=True).value_in_unit(unit.angstrom).reshape(-1))
+        frame = state.getPositions(asNumpy=True).value_in_unit(unit.angstrom).reshape(-1)
+        frames.append(superpose(frame, start[0]) if align else frame)
         energies.append(state.getPotentialEnergy().value_in_unit(unit.kilojoule_per_mole))
     # One force evaluation per step (LangevinMiddle reuses the last step's forces).
     evals = (n_steps // stride) * stride
