@@ -89,9 +89,10 @@ impl Cluster {
         std::fs::write(
             &wrapper,
             format!(
-                "#!/bin/sh\n# Logs each submission's job name, then runs the real sbatch.\nfor a in \"$@\"; do case \"$a\" in --job-name=*) echo \"${{a#--job-name=}}\" >> '{}' ;; esac; done\nexec '{}' \"$@\"\n",
-                log.display(),
-                real_sbatch.display()
+                "#!/bin/sh\n# Logs each submission's job name, then runs the real sbatch. While the\n# file {stall} exists it stalls 30 s after Slurm accepted the job, before printing the id.\nfor a in \"$@\"; do case \"$a\" in --job-name=*) echo \"${{a#--job-name=}}\" >> '{log}' ;; esac; done\nout=$('{real}' \"$@\"); rc=$?\nif [ -e '{stall}' ]; then sleep 30; fi\nprintf '%s\\n' \"$out\"\nexit $rc\n",
+                log = log.display(),
+                real = real_sbatch.display(),
+                stall = env.path().join("stall-sbatch").display(),
             ),
         )
         .unwrap();
@@ -674,6 +675,41 @@ keep_task_dirs = "none"
         f64::from(wide) / first_full.unwrap_or(f64::NAN),
     ));
     assert_eq!(submitted, (n + 1 + wide + 1) as usize);
+}
+
+/// tarn killed while `sbatch` is still running: Slurm has the job, tarn only its
+/// "submitting" record. The resumed tarn finds the job by its name and waits for it
+/// instead of submitting it again.
+#[test]
+fn a_tarn_killed_inside_sbatch_finds_its_job_by_name_on_resume() {
+    let Some(sbatch) = slurm() else { return };
+    let c = Cluster::new(&sbatch);
+    let text = faulty_text(&c.env, "sinside", "ok", 1, "").replace("walkers = 2", "walkers = 1");
+    let file = c.env.write("i.toml", &text);
+    let stall = c.env.write("stall-sbatch", "");
+    let child = c.spawn(&["run", file.to_str().unwrap(), "--quiet"]);
+    // The job is in Slurm's hands, while sbatch (stalled) has not told tarn its id.
+    c.wait_queue(Duration::from_secs(60), "the job accepted by Slurm", |q| {
+        !q.is_empty()
+    });
+    signal(&child, 9);
+    wait_with_limit(child, Duration::from_secs(10));
+    std::fs::remove_file(&stall).unwrap();
+    c.tarn(&["resume", "sinside", "--quiet"]).code(0);
+    let subs = c.submissions();
+    assert_eq!(
+        subs.len(),
+        2,
+        "the walker and the dedup task, once each: {subs:?}"
+    );
+    assert!(
+        subs[0].starts_with("sinside.r0001.walk.w000.a1."),
+        "{subs:?}"
+    );
+    assert!(
+        subs[1].starts_with("sinside.r0001.dedup.w000.a1."),
+        "{subs:?}"
+    );
 }
 
 /// Ctrl-C with no terminal: tarn leaves its jobs queued and running, exits 3 at once,
