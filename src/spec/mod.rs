@@ -460,7 +460,7 @@ impl Campaign {
             .map_err(|e| SpecError::at(file, source, "", e.span(), syntax_message(e.message())))?;
         let de = toml::Deserializer::new(source);
         let raw: RawCampaign = serde_path_to_error::deserialize(de).map_err(|e| {
-            let path = tidy_path(&e.path().to_string());
+            let path = tidy_path(e.path());
             let inner = e.into_inner();
             let span = inner.span().or_else(|| span_of(&doc, &path));
             SpecError::at(file, source, &path, span, serde_message(inner.message()))
@@ -626,16 +626,36 @@ fn syntax_message(m: &str) -> String {
 }
 
 fn serde_message(m: &str) -> String {
-    m.lines().next().unwrap_or(m).trim().to_string()
+    name_empty_key(m.lines().next().unwrap_or(m).trim())
 }
 
-/// serde_path_to_error prints `explore[0].params`; an empty path prints `.`.
-fn tidy_path(p: &str) -> String {
-    if p == "." {
-        String::new()
-    } else {
-        p.to_string()
+/// serde names an unknown empty key (`"" = 1`) as "unknown field ``", which reads as a
+/// garbled message; say what it is.
+fn name_empty_key(m: &str) -> String {
+    m.replace("unknown field ``", "unknown field `\"\"` (an empty key)")
+}
+
+/// The key path of a deserialization error as `explore[0].params`, the root as the
+/// empty string. An empty key is written `""`, as TOML writes it, so that the path
+/// of `"" = 1` in a stage reads `explore[0].""` rather than ending in a bare dot.
+fn tidy_path(p: &serde_path_to_error::Path) -> String {
+    use serde_path_to_error::Segment;
+    let mut out = String::new();
+    for seg in p.iter() {
+        let key = match seg {
+            Segment::Seq { index } => {
+                out.push_str(&format!("[{index}]"));
+                continue;
+            }
+            Segment::Map { key } | Segment::Enum { variant: key } => key.as_str(),
+            Segment::Unknown => "?",
+        };
+        if !out.is_empty() {
+            out.push('.');
+        }
+        out.push_str(if key.is_empty() { "\"\"" } else { key });
     }
+    out
 }
 
 /// Finds the span of the value at a key path such as `explore[1].walkers`; falls back to
@@ -962,8 +982,12 @@ fn check_builtin_params(
     };
     let spec: crate::physics::models::SystemSpec =
         serde_json::from_value(system.table.clone()).expect("validated system");
-    crate::workers::check_params(kind, &stage.params, &spec, system.dim, kt)
-        .map_err(|e| ctx.err(&format!("{path}.params"), format!("{kind}: {e}")))
+    crate::workers::check_params(kind, &stage.params, &spec, system.dim, kt).map_err(|e| {
+        ctx.err(
+            &format!("{path}.params"),
+            format!("{kind}: {}", name_empty_key(&e)),
+        )
+    })
 }
 
 /// The built-in kinds that can fill `role`.

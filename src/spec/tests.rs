@@ -52,6 +52,11 @@ fn broken_files_get_exact_messages() {
             "c.toml:14:1: explore[0].walker: unknown field `walker`, expected one of `name`, `kind`, `command`, `walkers`, `restart`, `timeout_seconds`, `pool_limit`, `params`, `slurm`\n   |\n14 | walker = 2\n   | ^^^^^^",
         ),
         (
+            "walkers = 2",
+            "\"\" = 2",
+            "c.toml:14:1: explore[0].\"\": unknown field `\"\"` (an empty key), expected one of `name`, `kind`, `command`, `walkers`, `restart`, `timeout_seconds`, `pool_limit`, `params`, `slurm`\n   |\n14 | \"\" = 2\n   | ^^",
+        ),
+        (
             "kT = 1.0",
             "kT = -1.0",
             "c.toml:3:6: kT: must be a positive number (the temperature in the system's energy unit)\n  |\n3 | kT = -1.0\n  |      ^^^^",
