@@ -136,12 +136,15 @@ fn state_rows(states: &[StateRecord]) -> Vec<StateRow> {
         .collect()
 }
 
-/// Each state's free energy pooled over rounds: the rounds since the reference state
-/// (the most populated one, F = 0) last changed, combined by
-/// [`crate::stats::pool`] — the inverse-variance mean, its error scaled by the Birge
-/// ratio when the rounds scatter more than their error bars allow. Rounds are
-/// independent draws when each round's evaluate samples afresh (flow generation); for
-/// trajectory-based evaluation the Birge scale is what keeps the pooled bar honest.
+/// Each state's free energy pooled over rounds, relative to the newest round's reference
+/// state (the most populated one, F = 0). A round whose reference was another state is
+/// shifted onto the newest reference by that round's own estimate of it, with the two
+/// error bars combined in quadrature (their covariance is ignored, which overstates
+/// the bar). The shifted estimates are combined by [`crate::stats::pool`]: the
+/// inverse-variance mean, its error scaled by the Birge ratio when the rounds scatter
+/// more than their error bars allow. Rounds are independent draws when each round's
+/// evaluation samples afresh (flow generation); for trajectory-based evaluation the
+/// Birge scale is what keeps the pooled bar honest.
 pub fn pooled_free_energies(states: &[StateRecord]) -> Vec<Option<crate::stats::Pooled>> {
     let mut reference: BTreeMap<u32, u32> = BTreeMap::new();
     for s in states {
@@ -154,20 +157,37 @@ pub fn pooled_free_energies(states: &[StateRecord]) -> Vec<Option<crate::stats::
     let Some((_, &current)) = reference.iter().next_back() else {
         return vec![None; states.len()];
     };
-    let since = reference
+    let Some(anchor) = states.iter().find(|s| s.id == current) else {
+        return vec![None; states.len()];
+    };
+    // The newest reference's estimate in each round: (F, error), 0 ± 0 where it was the
+    // reference itself.
+    let shift: BTreeMap<u32, (f64, f64)> = anchor
+        .estimates
         .iter()
-        .rev()
-        .take_while(|(_, &id)| id == current)
-        .last()
-        .map_or(0, |(&r, _)| r);
+        .map(|e| {
+            let err = if e.free_energy == 0.0 {
+                0.0
+            } else {
+                e.free_energy_err.unwrap_or(f64::NAN)
+            };
+            (e.round, (e.free_energy, err))
+        })
+        .collect();
     states
         .iter()
         .map(|s| {
             let pairs: Vec<(f64, f64)> = s
                 .estimates
                 .iter()
-                .filter(|e| e.round >= since && reference.get(&e.round) == Some(&current))
-                .map(|e| (e.free_energy, e.free_energy_err.unwrap_or(f64::NAN)))
+                .filter_map(|e| {
+                    let (f_ref, e_ref) = *shift.get(&e.round)?;
+                    if s.id == current {
+                        return Some((0.0, 0.0));
+                    }
+                    let err = e.free_energy_err.unwrap_or(f64::NAN);
+                    Some((e.free_energy - f_ref, err.hypot(e_ref)))
+                })
                 .collect();
             crate::stats::pool(&pairs)
         })
