@@ -271,3 +271,62 @@ fn short(v: f64) -> String {
         format!("{v:.4}")
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::store::{Estimate, Sighting};
+
+    fn state(id: u32, estimates: &[(u32, f64, Option<f64>)]) -> StateRecord {
+        StateRecord {
+            v: crate::store::SCHEMA_VERSION,
+            id,
+            energy: -1.0,
+            representative: vec![0.0],
+            found: Sighting {
+                round: 1,
+                stage: "s".into(),
+                task: "t".into(),
+                walker: 0,
+                seed: 0,
+                sample_index: 0,
+                cost_to_find: 0,
+            },
+            sightings: BTreeMap::new(),
+            estimates: estimates
+                .iter()
+                .map(|&(round, free_energy, free_energy_err)| Estimate {
+                    round,
+                    free_energy,
+                    free_energy_err,
+                })
+                .collect(),
+        }
+    }
+
+    #[test]
+    fn rounds_with_another_reference_are_shifted_onto_the_newest_one() {
+        // Round 1: state 0 is the reference and state 1 sits at +0.4 ± 0.1.
+        // Round 2: state 1 is the reference and state 0 sits at +0.2 ± 0.1. The newest
+        // reference is state 1, so state 0 pools {−0.4 ± 0.1 (round 1 shifted), +0.2 ± 0.1}.
+        let states = [
+            state(0, &[(1, 0.0, Some(0.0)), (2, 0.2, Some(0.1))]),
+            state(1, &[(1, 0.4, Some(0.1)), (2, 0.0, Some(0.0))]),
+        ];
+        let p = pooled_free_energies(&states);
+        let s0 = p[0].unwrap();
+        let s1 = p[1].unwrap();
+        assert_eq!((s1.value, s1.err, s1.n), (0.0, 0.0, 2));
+        assert_eq!(s0.n, 2);
+        assert!((s0.value - (-0.1)).abs() < 1e-12, "{}", s0.value);
+        // The two disagree by 0.6 with bars of 0.1: the Birge ratio scales the error
+        // to the scatter, |−0.4 − 0.2| / 2 = 0.3.
+        assert!((s0.err - 0.3).abs() < 1e-9, "{}", s0.err);
+    }
+
+    #[test]
+    fn nothing_is_pooled_before_any_estimate() {
+        let states = [state(0, &[]), state(1, &[])];
+        assert!(pooled_free_energies(&states).iter().all(Option::is_none));
+    }
+}
