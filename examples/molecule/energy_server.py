@@ -37,16 +37,16 @@ REQUEST = struct.Struct("<4sIQQB")
 REPLY = struct.Struct("<4sIQ")
 
 
-def read_exact(stream, size):
-    """Exactly size bytes, or fewer only at the end of the stream."""
-    chunks = []
-    while size > 0:
-        chunk = stream.read(size)
-        if not chunk:
+def read_into(stream, view):
+    """Fills the memoryview from the stream; returns the number of bytes read (less than
+    len(view) only at the end of the stream)."""
+    done = 0
+    while done < len(view):
+        k = stream.readinto(view[done:])
+        if not k:
             break
-        chunks.append(chunk)
-        size -= len(chunk)
-    return b"".join(chunks)
+        done += k
+    return done
 
 
 def fail(out, status, message):
@@ -69,25 +69,22 @@ class Evaluator:
         self.cpu_seconds = 0.0
         self.request_seconds = []
 
-    def evaluate(self, x, want_forces):
-        """Energies [n] in kJ/mol and, if wanted, forces [n, dim] in kJ/mol/A."""
+    def evaluate(self, x, energies, forces):
+        """Writes energies [n] in kJ/mol and, when `forces` is not None, forces [n, dim]
+        in kJ/mol/A into the given arrays (views of the reply buffer)."""
         start, cpu_start = time.perf_counter(), time.process_time()
         n = x.shape[0]
-        energies = np.empty(n)
-        forces = np.empty((n, self.dim)) if want_forces else None
         for i in range(n):
-            e, f = peptide.energy_and_forces(self.context, x[i]) if want_forces else (
-                peptide.energy_only(self.context, x[i]), None)
-            energies[i] = e
-            if want_forces:
-                forces[i] = f
+            if forces is None:
+                energies[i] = peptide.energy_only(self.context, x[i])
+            else:
+                energies[i], forces[i] = peptide.energy_and_forces(self.context, x[i])
         self.requests += 1
         if self.requests > 1:
             self.evals += n
             self.request_seconds.append(time.perf_counter() - start)
             self.seconds += self.request_seconds[-1]
             self.cpu_seconds += time.process_time() - cpu_start
-        return energies, forces
 
 
 def widen_pipes(size=1 << 20):
@@ -102,35 +99,45 @@ def widen_pipes(size=1 << 20):
 
 
 def serve(evaluator, inp, out):
-    """Answers requests until the input closes; returns the exit status."""
+    """Answers requests until the input closes; returns the exit status. The request
+    and reply buffers are reused between requests, and the reply is one write."""
+    header = bytearray(REQUEST.size)
+    payload = bytearray()
+    reply = bytearray()
     while True:
-        header = read_exact(inp, REQUEST.size)
-        if not header:
+        got = read_into(inp, memoryview(header))
+        if got == 0:
             return 0
-        if len(header) < REQUEST.size:
+        if got < REQUEST.size:
             print("energy_server.py: truncated request header", file=sys.stderr)
             return 1
         magic, version, n, dim, want_forces = REQUEST.unpack(header)
         if magic != b"TRNQ" or version != 1:
             fail(out, 1, f"bad request magic {magic!r} or version {version}")
             return 1
-        payload = read_exact(inp, 8 * n * dim)
-        if len(payload) < 8 * n * dim:
+        size = 8 * n * dim
+        if len(payload) < size:
+            payload = bytearray(size)
+        if read_into(inp, memoryview(payload)[:size]) < size:
             print("energy_server.py: truncated request payload", file=sys.stderr)
             return 1
         if dim != evaluator.dim:
             fail(out, 2, f"the molecule has {evaluator.dim} coordinates, the request {dim}")
             continue
-        x = np.frombuffer(payload, dtype="<f8").reshape(n, dim)
+        x = np.frombuffer(payload, dtype="<f8", count=n * dim).reshape(n, dim)
+        reply_size = REPLY.size + 8 * n + (8 * n * dim if want_forces else 0)
+        if len(reply) < reply_size:
+            reply = bytearray(reply_size)
+        energies = np.frombuffer(reply, dtype="<f8", count=n, offset=REPLY.size)
+        forces = np.frombuffer(reply, dtype="<f8", count=n * dim,
+                               offset=REPLY.size + 8 * n).reshape(n, dim) if want_forces else None
         try:
-            energies, forces = evaluator.evaluate(x, want_forces)
+            evaluator.evaluate(x, energies, forces)
         except Exception as e:  # an OpenMM error becomes a failure reply, not a crash
             fail(out, 3, f"OpenMM: {e}")
             continue
-        parts = [REPLY.pack(b"TRNR", 0, n), energies.astype("<f8").tobytes()]
-        if want_forces:
-            parts.append(forces.astype("<f8").tobytes())
-        out.write(b"".join(parts))
+        REPLY.pack_into(reply, 0, b"TRNR", 0, n)
+        out.write(memoryview(reply)[:reply_size])
         out.flush()
 
 
