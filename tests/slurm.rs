@@ -19,6 +19,15 @@ use std::time::{Duration, Instant};
 
 use common::{repo, signal, wait_with_limit, Env};
 
+/// The one node is shared by every test of this file; the node-failure test takes it
+/// alone (a write lock), the others share it (read locks).
+static NODE: std::sync::RwLock<()> = std::sync::RwLock::new(());
+
+/// A shared hold on the node for a test that does not disturb it.
+fn share_node() -> std::sync::RwLockReadGuard<'static, ()> {
+    NODE.read().unwrap_or_else(|e| e.into_inner())
+}
+
 /// The real `sbatch`, or why the tests cannot run. Panics when `TARN_REQUIRE_SLURM=1`
 /// and the cluster is missing or not idle/usable.
 fn slurm() -> Option<PathBuf> {
@@ -372,6 +381,7 @@ poll_max_seconds = 1
 #[test]
 fn a_campaign_through_slurm_has_the_local_digest_and_reports_cost() {
     let Some(sbatch) = slurm() else { return };
+    let _node = share_node();
     let local = Env::new();
     let file = local.write("walk.toml", &walk_text("", 3, 3));
     local
@@ -403,6 +413,7 @@ fn a_campaign_through_slurm_has_the_local_digest_and_reports_cost() {
 #[test]
 fn a_failing_job_is_retried_and_fails_with_the_worker_message() {
     let Some(sbatch) = slurm() else { return };
+    let _node = share_node();
     let c = Cluster::new(&sbatch);
     let file = c
         .env
@@ -439,6 +450,7 @@ fn a_failing_job_is_retried_and_fails_with_the_worker_message() {
 #[test]
 fn a_job_past_its_slurm_time_limit_is_a_timeout() {
     let Some(sbatch) = slurm() else { return };
+    let _node = share_node();
     let c = Cluster::new(&sbatch);
     // One attempt only: Slurm counts time limits in minutes and checks them about every
     // 30 s, so this test waits about 90 s.
@@ -465,6 +477,7 @@ fn a_job_past_its_slurm_time_limit_is_a_timeout() {
 #[test]
 fn a_job_cancelled_behind_tarns_back_is_retried() {
     let Some(sbatch) = slurm() else { return };
+    let _node = share_node();
     let c = Cluster::new(&sbatch);
     let text =
         faulty_text(&c.env, "scancelled", "hang", 2, "").replace("walkers = 2", "walkers = 1");
@@ -513,6 +526,7 @@ fn a_job_cancelled_behind_tarns_back_is_retried() {
 #[test]
 fn sigkill_while_jobs_are_queued_and_running_then_resume_submits_nothing_twice() {
     let Some(sbatch) = slurm() else { return };
+    let _node = share_node();
     // Four walkers on a two-CPU node: two run, two wait in the queue.
     let local = Env::new();
     let text = |exec: &str| walk_text(exec, 3, 4);
@@ -578,6 +592,7 @@ fn sigkill_while_jobs_are_queued_and_running_then_resume_submits_nothing_twice()
 #[test]
 fn overhead_and_tasks_in_flight_figures() {
     let Some(sbatch) = slurm() else { return };
+    let _node = share_node();
     let hold = |name: &str, walkers: u32, parallel: u32, exec: &str| {
         format!(
             r#"name = "{name}"
@@ -683,6 +698,7 @@ keep_task_dirs = "none"
 #[test]
 fn a_tarn_killed_inside_sbatch_finds_its_job_by_name_on_resume() {
     let Some(sbatch) = slurm() else { return };
+    let _node = share_node();
     let c = Cluster::new(&sbatch);
     let text = faulty_text(&c.env, "sinside", "ok", 1, "").replace("walkers = 2", "walkers = 1");
     let file = c.env.write("i.toml", &text);
@@ -717,6 +733,7 @@ fn a_tarn_killed_inside_sbatch_finds_its_job_by_name_on_resume() {
 #[test]
 fn ctrl_c_without_a_terminal_leaves_the_jobs_and_resume_collects_them() {
     let Some(sbatch) = slurm() else { return };
+    let _node = share_node();
     let c = Cluster::new(&sbatch);
     let text = faulty_text(&c.env, "sleave", "slow", 1, "").replace("walkers = 2", "walkers = 4");
     let file = c.env.write("l.toml", &text);
@@ -757,6 +774,7 @@ fn ctrl_c_without_a_terminal_leaves_the_jobs_and_resume_collects_them() {
 #[test]
 fn ctrl_c_on_a_terminal_asks_and_yes_cancels_the_jobs() {
     let Some(sbatch) = slurm() else { return };
+    let _node = share_node();
     if Command::new("script").arg("--version").output().is_err() {
         loud(
             "SKIPPED the terminal Ctrl-C test: util-linux `script` (a pseudo-terminal) is missing",
@@ -836,4 +854,76 @@ fn ctrl_c_on_a_terminal_asks_and_yes_cancels_the_jobs() {
 
 extern "C" {
     fn kill(pid: i32, sig: i32) -> i32;
+}
+
+/// A node failure under a running job: Slurm ends it as NODE_FAIL, tarn retries it
+/// (tarn submits with --no-requeue, so its retry policy, not Slurm's requeue, decides).
+#[test]
+fn a_job_lost_with_its_node_is_retried() {
+    let Some(sbatch) = slurm() else { return };
+    let _node = NODE.write().unwrap_or_else(|e| e.into_inner());
+    let c = Cluster::new(&sbatch);
+    let text = faulty_text(&c.env, "snode", "hang", 2, "").replace("walkers = 2", "walkers = 1");
+    let file = c.env.write("n.toml", &text);
+    let child = c.spawn(&["run", file.to_str().unwrap(), "--quiet"]);
+    let q = c.wait_queue(Duration::from_secs(60), "round 2's job running", |q| {
+        q.iter()
+            .any(|(_, n, s)| n.starts_with("snode.r0002.walk.w000.a1.") && s == "RUNNING")
+    });
+    let node = Command::new("squeue")
+        .args(["-h", "-j", &q[q.len() - 1].0, "-o", "%N"])
+        .output()
+        .unwrap();
+    let node = String::from_utf8_lossy(&node.stdout).trim().to_string();
+    std::fs::write(c.env.path().join("snode.mode"), "ok").unwrap();
+    let scontrol = |state: &str| {
+        Command::new("scontrol")
+            .args([
+                "update",
+                &format!("nodename={node}"),
+                &format!("state={state}"),
+            ])
+            .args(if state == "down" {
+                vec!["reason=tarn-test"]
+            } else {
+                vec![]
+            })
+            .status()
+            .unwrap()
+    };
+    assert!(scontrol("down").success());
+    // Bring the node back whatever happens next.
+    let t = Instant::now();
+    loop {
+        let s = Command::new("sinfo")
+            .args(["-h", "-n", &node, "-o", "%T"])
+            .output()
+            .unwrap();
+        let s = String::from_utf8_lossy(&s.stdout).trim().to_string();
+        if s == "idle" || s == "mixed" || s == "allocated" {
+            break;
+        }
+        if s.starts_with("down") || s.starts_with("drain") {
+            let _ = scontrol("resume");
+        }
+        assert!(
+            t.elapsed() < Duration::from_secs(60),
+            "node {node} stays {s}"
+        );
+        std::thread::sleep(Duration::from_millis(200));
+    }
+    let r = wait_with_limit(child, Duration::from_secs(60));
+    r.code(0);
+    let events = events_with(&c.env, "snode", "r0002.walk.w000");
+    let failed = events
+        .iter()
+        .find(|e| e["kind"] == "attempt_failed")
+        .unwrap_or_else(|| panic!("no attempt_failed event: {events:?}"));
+    assert!(
+        failed["message"]
+            .as_str()
+            .unwrap()
+            .contains("was lost with its node (state NODE_FAIL"),
+        "{failed}"
+    );
 }

@@ -19,8 +19,10 @@
 //!
 //! `sbatch` gets `--export=NIL` (nothing from tarn's own environment reaches the job
 //! but what the script sets), `--chdir` to the attempt directory, `--output`/`--error`
-//! to `stdout.log`/`stderr.log` there, a job name unique to the attempt, the stage's
-//! resources, and the campaign's extra arguments as separate words.
+//! to `stdout.log`/`stderr.log` there, a job name unique to the attempt,
+//! `--no-requeue` (tarn's retry policy, not Slurm's requeue, reruns a job lost to a
+//! node failure or a preemption), the stage's resources, and the campaign's extra
+//! arguments as separate words.
 //!
 //! # Watching
 //! One poller per executor asks `squeue -h -t all -j ID,ID,... -o %i|%T` about every job
@@ -163,6 +165,7 @@ impl SlurmExecutor {
         }
         let waited = Instant::now();
         let mut state = self.poller.watch(&id);
+        let mut watching = true;
         let end = loop {
             if let Some(s) = state.borrow_and_update().clone() {
                 if s.is_end() {
@@ -180,17 +183,13 @@ impl SlurmExecutor {
             }
             tokio::select! {
                 r = state.changed() => if r.is_err() { break JobState::Unknown },
-                r = kill.changed() => if r.is_err() { futures_pending().await },
+                // A closed stop channel means nobody will ask to stop: wait on the job.
+                r = kill.changed(), if watching => if r.is_err() { watching = false },
             }
         };
         self.poller.forget(&id);
         collect(&job, Some(&id), Some(end), waited).await
     }
-}
-
-/// Never returns (a closed stop channel means nobody will ask to stop).
-async fn futures_pending() {
-    std::future::pending::<()>().await
 }
 
 /// A job's state as `squeue` prints it, or `Unknown` once Slurm has no record of it.
@@ -452,6 +451,9 @@ pub fn sbatch_args(job: &Job, req: &BatchRequest, script: &Path) -> Vec<String> 
         "--export=NIL".into(),
         "--nodes=1".into(),
         "--ntasks=1".into(),
+        // tarn's retry policy decides what runs again after a node failure or a
+        // preemption, not Slurm's requeue (a campaign's sbatch_args may say --requeue).
+        "--no-requeue".into(),
     ];
     if let Some(m) = r.time_limit_minutes {
         a.push(format!("--time={m}"));
@@ -703,11 +705,15 @@ fn classify(
             (exit, None)
         }
         Some("TIMEOUT") => {
-            let limit = view.map(|v| v.time_limit.clone()).unwrap_or_default();
+            let limit = view
+                .map(|v| v.time_limit.as_str())
+                .filter(|l| !l.is_empty())
+                .map(|l| format!("its time limit of {l}"))
+                .unwrap_or_else(|| "its time limit".into());
             (
                 Exit::TimedOut,
                 Some(format!(
-                    "the Slurm job {id} ran past its time limit of {limit} and was ended by Slurm (state TIMEOUT)"
+                    "the Slurm job {id} ran past {limit} and was ended by Slurm (state TIMEOUT)"
                 )),
             )
         }
