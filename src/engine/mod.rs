@@ -831,7 +831,7 @@ fn attempt_of(number: u32, o: &Outcome, started_unix: f64) -> Attempt {
         wall_seconds: o.wall.as_secs_f64(),
         cpu_seconds: o.cpu.as_secs_f64(),
         energy_evals: 0,
-        host: crate::store::host_name(),
+        host: o.host.clone().unwrap_or_else(crate::store::host_name),
         started_unix,
     }
 }

@@ -121,6 +121,7 @@ impl LocalExecutor {
             stdout_bytes,
             stderr_bytes,
             detail: None,
+            host: None,
         }
     }
 }

@@ -110,6 +110,8 @@ pub struct Outcome {
     /// The executor's own sentence about how the job ended, when it knows more than the
     /// exit status says (a batch system's state and reason).
     pub detail: Option<String>,
+    /// The host the job ran on, when it is not this one (a batch job's node).
+    pub host: Option<String>,
 }
 
 impl Outcome {
@@ -124,6 +126,7 @@ impl Outcome {
             stdout_bytes: 0,
             stderr_bytes: 0,
             detail: None,
+            host: None,
         }
     }
 }

@@ -515,7 +515,7 @@ start=$EPOCHREALTIME
 status=$?
 end=$EPOCHREALTIME
 # `times` in this shell, not in a subshell: its second line is the worker's CPU time.
-{{ printf 'status=%s\nstart=%s\nend=%s\n' "$status" "$start" "$end"; times; }} > {end_file}.tmp
+{{ printf 'status=%s\nstart=%s\nend=%s\nnode=%s\n' "$status" "$start" "$end" "${{SLURMD_NODENAME:-$(hostname)}}"; times; }} > {end_file}.tmp
 mv -f {end_file}.tmp {end_file}
 exit "$status"
 "#,
@@ -531,6 +531,8 @@ exit "$status"
 #[derive(Debug, Clone, PartialEq)]
 struct EndRecord {
     status: i32,
+    /// The node the worker ran on.
+    node: Option<String>,
     wall: Option<Duration>,
     cpu: Duration,
 }
@@ -560,7 +562,13 @@ fn parse_end_file(text: &str) -> Option<EndRecord> {
         .find(|l| !l.contains('='))
         .map(|c| c.split_whitespace().filter_map(parse_times).sum())
         .unwrap_or_default();
-    Some(EndRecord { status, wall, cpu })
+    let node = field("node").filter(|n| !n.is_empty()).map(String::from);
+    Some(EndRecord {
+        status,
+        node,
+        wall,
+        cpu,
+    })
 }
 
 /// One figure of bash's `times`, e.g. `1m2.345s`.
@@ -664,6 +672,7 @@ async fn collect(job: &Job, id: Option<&str>, state: Option<JobState>, waited: I
     Outcome {
         exit,
         wall,
+        host: end.as_ref().and_then(|e| e.node.clone()),
         cpu: end.map(|e| e.cpu).unwrap_or_default(),
         stdout_tail,
         stderr_tail,
@@ -832,6 +841,7 @@ mod tests {
         assert!(d.unwrap().contains("cancelled outside tarn"));
         let end = EndRecord {
             status: 137,
+            node: None,
             wall: None,
             cpu: Duration::ZERO,
         };
@@ -845,10 +855,11 @@ mod tests {
     #[test]
     fn the_end_file_gives_status_wall_and_cpu() {
         let e = parse_end_file(
-            "status=0\nstart=100.25\nend=101.75\n0m0.010s 0m0.000s\n1m0.500s 0m0.250s\n",
+            "status=0\nstart=100.25\nend=101.75\nnode=n17\n0m0.010s 0m0.000s\n1m0.500s 0m0.250s\n",
         )
         .unwrap();
         assert_eq!(e.status, 0);
+        assert_eq!(e.node.as_deref(), Some("n17"));
         assert_eq!(e.wall, Some(Duration::from_millis(1500)));
         assert_eq!(e.cpu, Duration::from_millis(60_750));
         assert_eq!(
