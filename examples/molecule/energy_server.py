@@ -59,8 +59,9 @@ def fail(out, status, message):
 class Evaluator:
     """Batched energies and forces of one molecule on one OpenMM context."""
 
-    def __init__(self, pdb_path):
+    def __init__(self, pdb_path, timed=False):
         topology = peptide.load_topology(pdb_path)
+        self.timed = timed
         self.dim = 3 * topology.getNumAtoms()
         self.context = peptide.reference_context(peptide.create_system(topology))
         self.requests = 0
@@ -72,13 +73,16 @@ class Evaluator:
     def evaluate(self, x, energies, forces):
         """Writes energies [n] in kJ/mol and, when `forces` is not None, forces [n, dim]
         in kJ/mol/A into the given arrays (views of the reply buffer)."""
-        start, cpu_start = time.perf_counter(), time.process_time()
+        if self.timed:
+            start, cpu_start = time.perf_counter(), time.process_time()
         n = x.shape[0]
         for i in range(n):
             if forces is None:
                 energies[i] = peptide.energy_only(self.context, x[i])
             else:
                 energies[i], forces[i] = peptide.energy_and_forces(self.context, x[i])
+        if not self.timed:
+            return
         self.requests += 1
         if self.requests > 1:
             self.evals += n
@@ -102,10 +106,12 @@ def serve(evaluator, inp, out):
     """Answers requests until the input closes; returns the exit status. The request
     and reply buffers are reused between requests, and the reply is one write."""
     header = bytearray(REQUEST.size)
+    header_view = memoryview(header)
     payload = bytearray()
     reply = bytearray()
+    views = {}  # (n, want_forces) -> (x, energies, forces, reply size): numpy views
     while True:
-        got = read_into(inp, memoryview(header))
+        got = read_into(inp, header_view)
         if got == 0:
             return 0
         if got < REQUEST.size:
@@ -118,26 +124,32 @@ def serve(evaluator, inp, out):
         size = 8 * n * dim
         if len(payload) < size:
             payload = bytearray(size)
+            views.clear()
         if read_into(inp, memoryview(payload)[:size]) < size:
             print("energy_server.py: truncated request payload", file=sys.stderr)
             return 1
         if dim != evaluator.dim:
             fail(out, 2, f"the molecule has {evaluator.dim} coordinates, the request {dim}")
             continue
-        x = np.frombuffer(payload, dtype="<f8", count=n * dim).reshape(n, dim)
-        reply_size = REPLY.size + 8 * n + (8 * n * dim if want_forces else 0)
-        if len(reply) < reply_size:
-            reply = bytearray(reply_size)
-        energies = np.frombuffer(reply, dtype="<f8", count=n, offset=REPLY.size)
-        forces = np.frombuffer(reply, dtype="<f8", count=n * dim,
-                               offset=REPLY.size + 8 * n).reshape(n, dim) if want_forces else None
+        key = (n, want_forces)
+        if key not in views:
+            reply_size = REPLY.size + 8 * n + (8 * n * dim if want_forces else 0)
+            if len(reply) < reply_size:
+                reply = bytearray(reply_size)
+                views.clear()
+            x = np.frombuffer(payload, dtype="<f8", count=n * dim).reshape(n, dim)
+            energies = np.frombuffer(reply, dtype="<f8", count=n, offset=REPLY.size)
+            forces = np.frombuffer(reply, dtype="<f8", count=n * dim,
+                                   offset=REPLY.size + 8 * n).reshape(n, dim) if want_forces else None
+            views[key] = (x, energies, forces, memoryview(reply)[:reply_size])
+        x, energies, forces, reply_view = views[key]
         try:
             evaluator.evaluate(x, energies, forces)
         except Exception as e:  # an OpenMM error becomes a failure reply, not a crash
             fail(out, 3, f"OpenMM: {e}")
             continue
         REPLY.pack_into(reply, 0, b"TRNR", 0, n)
-        out.write(memoryview(reply)[:reply_size])
+        out.write(reply_view)
         out.flush()
 
 
@@ -150,7 +162,7 @@ def main():
     if len(args) != 1:
         print("usage: energy_server.py MOLECULE.pdb [--timing FILE]", file=sys.stderr)
         return 2
-    evaluator = Evaluator(args[0])
+    evaluator = Evaluator(args[0], timed=timing is not None)
     widen_pipes()
     cpu_start = time.process_time()
     status = serve(evaluator, sys.stdin.buffer, sys.stdout.buffer)
