@@ -277,3 +277,39 @@ fn pipe_throughput_against_openmm_in_the_same_run() {
         );
     }
 }
+
+/// `tarn check` refuses a dihedral fingerprint that names an atom the molecule does not
+/// have, and a FIRE time step range the wrong way round, naming the stage and key, before
+/// any worker starts (needs no openmm: nothing is run).
+#[test]
+fn check_refuses_bad_fingerprint_and_fire_settings() {
+    let env = Env::new();
+    let text = std::fs::read_to_string(repo().join("workflows/alanine.toml"))
+        .unwrap()
+        .replace(
+            "../examples/",
+            &format!("{}/", repo().join("examples").display()),
+        );
+    let good = env.write("good.toml", &text);
+    env.tarn(&["check", good.to_str().unwrap()]).code(0);
+    let bad_atom = env.write(
+        "bad-atom.toml",
+        &text.replace("[6, 8, 14, 16]]", "[6, 8, 14, 22]]"),
+    );
+    let r = env.tarn(&["check", bad_atom.to_str().unwrap()]);
+    r.code(2);
+    assert!(
+        r.stderr.contains("dedup")
+            && r.stderr.contains("fingerprint")
+            && r.stderr.contains("below the 22 atoms"),
+        "{}",
+        r.stderr
+    );
+    let bad_dt = env.write(
+        "bad-dt.toml",
+        &text.replace("dt_max = 0.018", "dt_max = 0.001"),
+    );
+    let r = env.tarn(&["check", bad_dt.to_str().unwrap()]);
+    r.code(2);
+    assert!(r.stderr.contains("dt_max"), "{}", r.stderr);
+}
