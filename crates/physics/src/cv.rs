@@ -175,7 +175,9 @@ impl CollectiveVariable {
                 require(r0.is_finite() && *r0 > 0.0, "r0", "must be positive")
             }
             CollectiveVariable::Magnetisation {} => Ok(()),
-            CollectiveVariable::Dihedral { i, j, k, l } => validate_dihedral([*i, *j, *k, *l], dim),
+            CollectiveVariable::Dihedral { i, j, k, l } => {
+                validate_dihedral([*i, *j, *k, *l], dim, "i")
+            }
         }
     }
 
@@ -311,8 +313,13 @@ fn coordination(x: &[f64], d: usize, r0: f64, grad: &mut [f64]) -> f64 {
 }
 
 /// Checks that four atoms name a dihedral of configurations of `dim` coordinates in 3-D:
-/// `dim` a multiple of 3, every index an atom, and four different atoms.
-pub fn validate_dihedral(atoms: [usize; 4], dim: usize) -> Result<(), PhysicsError> {
+/// `dim` a multiple of 3, every index an atom, and four different atoms. `key` is the
+/// campaign-file key the atoms came from, for the message.
+pub fn validate_dihedral(
+    atoms: [usize; 4],
+    dim: usize,
+    key: &'static str,
+) -> Result<(), PhysicsError> {
     require(
         dim > 0 && dim.is_multiple_of(3),
         "dim",
@@ -321,7 +328,7 @@ pub fn validate_dihedral(atoms: [usize; 4], dim: usize) -> Result<(), PhysicsErr
     let n = dim / 3;
     require(
         atoms.iter().all(|a| *a < n),
-        "i",
+        key,
         format!("atoms {atoms:?} must be below the {n} atoms of dimension {dim}"),
     )?;
     let distinct = (0..4).all(|p| (p + 1..4).all(|q| atoms[p] != atoms[q]));

@@ -72,7 +72,7 @@ impl Fingerprint {
                 )?;
                 dihedrals
                     .iter()
-                    .try_for_each(|d| validate_dihedral(*d, dim))
+                    .try_for_each(|d| validate_dihedral(*d, dim, "dihedrals"))
             }
             _ => require(dim > 0, "dim", "must be positive"),
         }
