@@ -888,6 +888,7 @@ fn a_job_lost_with_its_node_is_retried() {
             } else {
                 vec![]
             })
+            .stderr(std::process::Stdio::null())
             .status()
             .unwrap()
     };
