@@ -46,8 +46,12 @@ fn expected_plots(store: &Store) -> Vec<String> {
     if stored_profile(store) {
         want.push("plot-profile".into());
     }
-    // Latent paths from the first state to up to three others, when a flow exists.
+    // The cost curve of the pooled free energies, once any state has an estimate.
     let states = store.states().unwrap();
+    if states.iter().any(|s| !s.estimates.is_empty()) {
+        want.push("plot-free-energy-cost".into());
+    }
+    // Latent paths from the first state to up to three others, when a flow exists.
     if !store.models().unwrap().is_empty() && states.len() >= 2 {
         for s in states.iter().skip(1).take(3) {
             want.push(format!("plot-path-{}-{}", states[0].id, s.id));

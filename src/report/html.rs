@@ -528,7 +528,7 @@ fn free_energy_section(c: &Context) -> anyhow::Result<String> {
             points: c.states[i]
                 .estimates
                 .iter()
-                .map(|e| (e.round, e.free_energy, e.free_energy_err))
+                .map(|e| (f64::from(e.round), e.free_energy, e.free_energy_err))
                 .collect(),
         })
         .collect();
@@ -569,8 +569,58 @@ fn free_energy_section(c: &Context) -> anyhow::Result<String> {
         }
         out.push_str("</ul>\n");
     }
+    if !tracks.is_empty() {
+        let cost = pooled_cost_tracks(c, &order);
+        let svg = plots::free_energies_by_cost(
+            &cost,
+            Axes {
+                x: "cumulative energy evaluations",
+                y: "pooled free energy F [kT]",
+            },
+        )?;
+        out.push_str(&figure(
+            "plot-free-energy-cost",
+            &svg,
+            "pooled free energy of each state against energy evaluations",
+            "The cost curve of the answer: after each round, each state's free energy pooled over the rounds so far (inverse-variance mean, error bar scaled by the Birge ratio when the rounds disagree), against the energy evaluations the campaign had spent. The command tarn bench discovery draws the same curve beside plain Metropolis and Langevin.",
+            None,
+        ));
+    }
     out.push_str("</section>\n");
     Ok(out)
+}
+
+/// For the states at `order` (catalogue positions), the pooled free energy after each
+/// round against the campaign's cumulative energy evaluations; at most 60 rounds are
+/// sampled so that a long campaign's report stays cheap to rebuild.
+fn pooled_cost_tracks(c: &Context, order: &[usize]) -> Vec<StateTrack> {
+    let mut tracks: Vec<StateTrack> = order
+        .iter()
+        .map(|&i| StateTrack {
+            index: i,
+            points: Vec::new(),
+        })
+        .collect();
+    for k in plots::thin(c.rounds.len(), 60) {
+        let r = &c.rounds[k];
+        let upto: Vec<StateRecord> = c
+            .states
+            .iter()
+            .map(|s| {
+                let mut s = s.clone();
+                s.estimates.retain(|e| e.round <= r.round);
+                s
+            })
+            .collect();
+        let pooled = super::pooled_free_energies(&upto);
+        for t in &mut tracks {
+            if let Some(p) = pooled[t.index] {
+                let x = r.cumulative_energy_evals as f64;
+                t.points.push((x, p.value, Some(p.err)));
+            }
+        }
+    }
+    tracks
 }
 
 /// The ESS fraction of each round that has one: the evaluate stage's metric when the

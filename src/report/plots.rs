@@ -373,8 +373,10 @@ pub fn discovery_by_cost(costs: &[u64], total: u64, axes: Axes) -> Result<String
 pub struct StateTrack {
     /// Position of the state in the catalogue (its colour).
     pub index: usize,
-    /// (round, free energy in kT, error in kT) per estimate, in round order.
-    pub points: Vec<(u32, f64, Option<f64>)>,
+    /// (x, free energy in kT, error in kT) per estimate, in x order; x is the round
+    /// for [`free_energies`] and the cumulative energy evaluations for
+    /// [`free_energies_by_cost`].
+    pub points: Vec<(f64, f64, Option<f64>)>,
 }
 
 /// A track's colour index and its finite (round, F, error) points.
@@ -384,6 +386,19 @@ type FiniteTrack = (usize, Vec<(f64, f64, f64)>);
 /// bars are thinned to at most 60 per state so that a long campaign stays light; the
 /// line passes through every estimate.
 pub fn free_energies(tracks: &[StateTrack], axes: Axes) -> Result<String, PlotError> {
+    free_energy_tracks(tracks, axes, &whole_tick)
+}
+
+/// The same, against cumulative energy evaluations: the cost curve of the answer.
+pub fn free_energies_by_cost(tracks: &[StateTrack], axes: Axes) -> Result<String, PlotError> {
+    free_energy_tracks(tracks, axes, &value_tick)
+}
+
+fn free_energy_tracks(
+    tracks: &[StateTrack],
+    axes: Axes,
+    x_tick: &dyn Fn(&f64) -> String,
+) -> Result<String, PlotError> {
     let finite: Vec<FiniteTrack> = tracks
         .iter()
         .map(|t| {
@@ -393,7 +408,7 @@ pub fn free_energies(tracks: &[StateTrack], axes: Axes) -> Result<String, PlotEr
                 .filter(|p| p.1.is_finite())
                 .map(|p| {
                     let e = p.2.filter(|e| e.is_finite() && *e >= 0.0).unwrap_or(0.0);
-                    (f64::from(p.0), p.1, e)
+                    (p.0, p.1, e)
                 })
                 .collect();
             (t.index, pts)
@@ -410,7 +425,7 @@ pub fn free_energies(tracks: &[StateTrack], axes: Axes) -> Result<String, PlotEr
     svg(SMALL, |root| {
         let mut chart =
             builder(root).build_cartesian_2d(span(x0, x1, 0.04), span(y0.min(0.0), y1, 0.08))?;
-        mesh(&mut chart, axes, &whole_tick, &value_tick)?;
+        mesh(&mut chart, axes, x_tick, &value_tick)?;
         let dx = (x1 - x0).max(1.0) * 0.006;
         for (index, pts) in &finite {
             let colour = state_colour(*index);
