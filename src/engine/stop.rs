@@ -203,7 +203,7 @@ pub fn evaluate_stage(c: &crate::spec::Campaign) -> Option<&str> {
 mod tests {
     use super::*;
     use crate::spec::Stability;
-    use crate::store::{Estimate, Sighting, StageTotals};
+    use crate::store::StageTotals;
 
     fn round(n: u32, new: u32, evals: u64) -> RoundRecord {
         let mut eval = StageTotals {
@@ -229,30 +229,9 @@ mod tests {
     }
 
     fn state(id: u32, estimates: &[(u32, f64, f64)]) -> StateRecord {
-        StateRecord {
-            v: 1,
-            id,
-            energy: 0.0,
-            representative: vec![],
-            found: Sighting {
-                round: 1,
-                stage: "s".into(),
-                task: "t".into(),
-                walker: 0,
-                seed: 0,
-                sample_index: 0,
-                cost_to_find: 0,
-            },
-            sightings: Default::default(),
-            estimates: estimates
-                .iter()
-                .map(|&(round, f, e)| Estimate {
-                    round,
-                    free_energy: f,
-                    free_energy_err: Some(e),
-                })
-                .collect(),
-        }
+        let with_errors: Vec<(u32, f64, Option<f64>)> =
+            estimates.iter().map(|&(r, f, e)| (r, f, Some(e))).collect();
+        StateRecord::for_test(id, &with_errors)
     }
 
     fn rules() -> StopRules {

@@ -275,33 +275,9 @@ fn short(v: f64) -> String {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::store::{Estimate, Sighting};
 
     fn state(id: u32, estimates: &[(u32, f64, Option<f64>)]) -> StateRecord {
-        StateRecord {
-            v: crate::store::SCHEMA_VERSION,
-            id,
-            energy: -1.0,
-            representative: vec![0.0],
-            found: Sighting {
-                round: 1,
-                stage: "s".into(),
-                task: "t".into(),
-                walker: 0,
-                seed: 0,
-                sample_index: 0,
-                cost_to_find: 0,
-            },
-            sightings: BTreeMap::new(),
-            estimates: estimates
-                .iter()
-                .map(|&(round, free_energy, free_energy_err)| Estimate {
-                    round,
-                    free_energy,
-                    free_energy_err,
-                })
-                .collect(),
-        }
+        StateRecord::for_test(id, estimates)
     }
 
     #[test]

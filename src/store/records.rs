@@ -136,6 +136,37 @@ pub struct StateRecord {
     pub estimates: Vec<Estimate>,
 }
 
+#[cfg(test)]
+impl StateRecord {
+    /// A state for unit tests: found in round 1, with `(round, F, error)` estimates.
+    pub(crate) fn for_test(id: u32, estimates: &[(u32, f64, Option<f64>)]) -> StateRecord {
+        StateRecord {
+            v: SCHEMA_VERSION,
+            id,
+            energy: -1.0,
+            representative: vec![0.0],
+            found: Sighting {
+                round: 1,
+                stage: "s".into(),
+                task: "t".into(),
+                walker: 0,
+                seed: 0,
+                sample_index: 0,
+                cost_to_find: 0,
+            },
+            sightings: BTreeMap::new(),
+            estimates: estimates
+                .iter()
+                .map(|&(round, free_energy, free_energy_err)| Estimate {
+                    round,
+                    free_energy,
+                    free_energy_err,
+                })
+                .collect(),
+        }
+    }
+}
+
 /// A stage's totals within a round.
 #[derive(Debug, Clone, Serialize, Deserialize, PartialEq, Default)]
 #[serde(deny_unknown_fields)]
