@@ -35,6 +35,8 @@ struct ReweightParams {
     max_steps: u64,
     energy_tolerance: f64,
     fingerprint_tolerance: f64,
+    /// The state fingerprint, as for the `quench` dedup kind (the same one it names).
+    fingerprint: Option<crate::physics::fingerprint::Fingerprint>,
     /// A 1-D free-energy profile along a collective variable (optional).
     profile: Option<ProfileParams>,
 }
@@ -59,16 +61,19 @@ impl Default for ReweightParams {
             max_steps: m.max_steps,
             energy_tolerance: m.energy_tolerance,
             fingerprint_tolerance: m.fingerprint_tolerance,
+            fingerprint: None,
             profile: None,
         }
     }
 }
 
 /// Checks `reweight` parameters (for `tarn check`).
-pub fn check(params: &serde_json::Value) -> Result<(), String> {
-    serde_json::from_value::<ReweightParams>(params.clone())
-        .map(|_| ())
-        .map_err(|e| e.to_string())
+pub fn check(params: &serde_json::Value, dim: usize) -> Result<(), String> {
+    let p = serde_json::from_value::<ReweightParams>(params.clone()).map_err(|e| e.to_string())?;
+    match &p.fingerprint {
+        Some(fp) => fp.validate(dim).map_err(|e| format!("fingerprint: {e}")),
+        None => Ok(()),
+    }
 }
 
 /// Runs the `reweight` kind.
@@ -108,6 +113,7 @@ pub fn reweight(task: &Task) -> Result<Output, String> {
         max_steps: p.max_steps,
         energy_tolerance: p.energy_tolerance,
         fingerprint_tolerance: p.fingerprint_tolerance,
+        fingerprint: p.fingerprint.clone(),
     };
     let (assigned, quench_evals) =
         assign_by_quench(&spec, model.as_ref(), &xs, &catalogue, &cat_e, &matching)?;

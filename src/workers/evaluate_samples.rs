@@ -29,6 +29,8 @@ struct SampleParams {
     max_steps: u64,
     energy_tolerance: f64,
     fingerprint_tolerance: f64,
+    /// The state fingerprint, as for the `quench` dedup kind (the same one it names).
+    fingerprint: Option<crate::physics::fingerprint::Fingerprint>,
 }
 
 impl Default for SampleParams {
@@ -41,15 +43,18 @@ impl Default for SampleParams {
             max_steps: m.max_steps,
             energy_tolerance: m.energy_tolerance,
             fingerprint_tolerance: m.fingerprint_tolerance,
+            fingerprint: None,
         }
     }
 }
 
 /// Checks `mbar` and `reweight-bias` parameters (for `tarn check`).
-pub fn check(params: &serde_json::Value) -> Result<(), String> {
-    serde_json::from_value::<SampleParams>(params.clone())
-        .map(|_| ())
-        .map_err(|e| e.to_string())
+pub fn check(params: &serde_json::Value, dim: usize) -> Result<(), String> {
+    let p = serde_json::from_value::<SampleParams>(params.clone()).map_err(|e| e.to_string())?;
+    match &p.fingerprint {
+        Some(fp) => fp.validate(dim).map_err(|e| format!("fingerprint: {e}")),
+        None => Ok(()),
+    }
 }
 
 /// The `mbar` kind: every explore stage is a thermodynamic state at its declared
@@ -106,6 +111,7 @@ fn estimate(task: &Task, p: &SampleParams, log_w: &[f64]) -> Result<Output, Stri
         max_steps: p.max_steps,
         energy_tolerance: p.energy_tolerance,
         fingerprint_tolerance: p.fingerprint_tolerance,
+        fingerprint: p.fingerprint.clone(),
     };
     let (labels, quench_evals) = assign_by_quench(
         &spec,

@@ -111,8 +111,8 @@ pub fn check_params(
         "generate" => flow::check_generate(&v),
         "quench" => de::<dedup::QuenchParams>(&v)?.validate(dim),
         "realnvp" => flow::check_retrain(system, dim, kt, &v),
-        "reweight" => evaluate::check(&v),
-        "mbar" | "reweight-bias" => evaluate_samples::check(&v),
+        "reweight" => evaluate::check(&v, dim),
+        "mbar" | "reweight-bias" => evaluate_samples::check(&v, dim),
         other => Err(format!("'{other}' is not a built-in kind")),
     }
 }

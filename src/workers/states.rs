@@ -1,19 +1,23 @@
 //! What the evaluate kinds share: assigning samples to the catalogue's states by
 //! quench, and turning state free-energy estimates into the evaluate outputs.
 
-use crate::physics::fingerprint::{assign, Fingerprint, StateTolerance};
+use crate::physics::fingerprint::{Fingerprint, StateTolerance};
 use crate::physics::quench::{quench_batch, FireParams, QuenchStatus};
 use crate::physics::{EnergyModel, SystemSpec};
 use crate::protocol::Array;
 use crate::stats::StateFreeEnergies;
 
-/// Quench and matching settings (the same keys as the `quench` dedup kind).
-#[derive(Debug, Clone, Copy)]
+/// Quench and matching settings (the same keys as the `quench` dedup kind). An
+/// evaluate stage must identify states the way the dedup stage does: a campaign whose
+/// dedup names a `fingerprint` (e.g. dihedrals for a molecule) names the same one here.
+#[derive(Debug, Clone)]
 pub struct Matching {
     pub force_tolerance: f64,
     pub max_steps: u64,
     pub energy_tolerance: f64,
     pub fingerprint_tolerance: f64,
+    /// The state fingerprint; the system's natural one when absent.
+    pub fingerprint: Option<Fingerprint>,
 }
 
 impl Default for Matching {
@@ -25,6 +29,17 @@ impl Default for Matching {
             max_steps: fire.max_steps,
             energy_tolerance: tol.energy,
             fingerprint_tolerance: tol.fingerprint,
+            fingerprint: None,
+        }
+    }
+}
+
+impl Matching {
+    /// Checks the fingerprint against the system's dimension (for `tarn check`).
+    pub fn validate(&self, dim: usize) -> Result<(), String> {
+        match &self.fingerprint {
+            Some(fp) => fp.validate(dim).map_err(|e| format!("fingerprint: {e}")),
+            None => Ok(()),
         }
     }
 }
@@ -47,7 +62,11 @@ pub fn assign_by_quench(
         ..FireParams::default()
     };
     let q = quench_batch(model, xs, &fire).map_err(|e| format!("quench: {e}"))?;
-    let fp = Fingerprint::for_system(spec);
+    m.validate(dim)?;
+    let fp = m
+        .fingerprint
+        .clone()
+        .unwrap_or_else(|| Fingerprint::for_system(spec));
     let known: Vec<(f64, Vec<f64>)> = (0..catalogue.rows())
         .map(|i| {
             (
@@ -65,7 +84,8 @@ pub fn assign_by_quench(
             if q.status[j] != QuenchStatus::Converged {
                 return None;
             }
-            assign(q.energies[j], &fp.compute(q.minimum(j)), &known, &tol).map(|s| s as u32)
+            fp.assign(q.energies[j], &fp.compute(q.minimum(j)), &known, &tol)
+                .map(|s| s as u32)
         })
         .collect();
     Ok((labels, q.n_evals))
@@ -84,4 +104,40 @@ pub fn free_energy_arrays(est: &StateFreeEnergies, k: usize) -> (Array, Array) {
         }
     }
     (Array::vector(f), Array::vector(ferr))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn an_evaluate_fingerprint_is_checked_against_the_system() {
+        let fp: Fingerprint = serde_json::from_value(serde_json::json!(
+            {"kind": "dihedrals", "dihedrals": [[0, 1, 2, 3]]}
+        ))
+        .unwrap();
+        let m = Matching {
+            fingerprint: Some(fp),
+            ..Matching::default()
+        };
+        // Four atoms in 3-D need 12 coordinates.
+        assert!(m.validate(12).is_ok());
+        let err = m.validate(9).unwrap_err();
+        assert!(err.starts_with("fingerprint:"), "{err}");
+        assert!(Matching::default().validate(2).is_ok());
+    }
+
+    #[test]
+    fn evaluate_kinds_take_the_dedup_fingerprint_key() {
+        let v =
+            serde_json::json!({"fingerprint": {"kind": "dihedrals", "dihedrals": [[0, 1, 2, 30]]}});
+        for kind in ["reweight", "mbar", "reweight-bias"] {
+            let spec: SystemSpec = serde_json::from_value(
+                serde_json::json!({"model": "external", "command": ["x"], "dim": 12}),
+            )
+            .unwrap();
+            let err = crate::workers::check_params(kind, &v, &spec, 12, 1.0).unwrap_err();
+            assert!(err.contains("fingerprint"), "{kind}: {err}");
+        }
+    }
 }
