@@ -14,7 +14,7 @@ TARGETS="campaign_file npy result_json external_reply flow_weights"
 # Pin the dependency versions to the workspace's own lock file.
 [ -f Cargo.lock ] || cp ../Cargo.lock Cargo.lock
 RUSTC_BOOTSTRAP=1 cargo fuzz build
-BIN="target/$(rustc -vV | sed -n 's/^host: //p')/release"
+BIN="${CARGO_TARGET_DIR:-target}/$(rustc -vV | sed -n 's/^host: //p')/release"
 SCRATCH="$(mktemp -d)"
 trap 'rm -rf "$SCRATCH"' EXIT
 failed=""
