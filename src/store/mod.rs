@@ -70,6 +70,10 @@ pub const COMMIT_FILE: &str = "commits.json";
 /// The store key of the commit counter, raised in every batch.
 const COMMITS_KEY: &[u8] = b"mcommits";
 
+/// Free space a commit must find beyond twice its own size: room for sled to start a
+/// few new log segments (512 KiB each) and to write its snapshot.
+pub const SPACE_MARGIN: u64 = 2 << 20;
+
 /// Why the store could not do what was asked.
 #[derive(Debug, thiserror::Error)]
 pub enum StoreError {
@@ -92,6 +96,13 @@ pub enum StoreError {
         path: String,
         file: String,
         detail: String,
+    },
+    #[error("store {path}: No space left on device: a commit of {bytes} bytes needs {need} bytes free and {free} are; nothing was written. Free some space, then `tarn resume`")]
+    NoSpace {
+        path: String,
+        bytes: u64,
+        need: u64,
+        free: u64,
     },
     #[error("store {path} was opened read-only (a private copy for a read command) and cannot be written")]
     ReadOnly { path: String },
@@ -197,12 +208,15 @@ pub fn host_name() -> String {
 pub struct Batch {
     inner: sled::Batch,
     events: Vec<(String, String)>,
+    /// Bytes of the keys and values put so far (for the free-space check).
+    bytes: u64,
 }
 
 impl Batch {
     /// Puts a versioned record.
     pub fn put<T: Serialize>(&mut self, key: Vec<u8>, value: &T) {
         let bytes = serde_json::to_vec(value).expect("records serialize");
+        self.bytes += (key.len() + bytes.len()) as u64;
         self.inner.insert(key, bytes);
     }
 
@@ -220,6 +234,7 @@ impl Batch {
             let mut v = Vec::with_capacity(chunk.len() + 1);
             v.push(SCHEMA_VERSION as u8);
             v.extend_from_slice(chunk);
+            self.bytes += (k.len() + v.len()) as u64;
             self.inner.insert(k, v);
         }
         if bytes.is_empty() {
@@ -566,6 +581,30 @@ impl Store {
         Ok(())
     }
 
+    /// Refuses a commit that the file system has no room for, before sled sees it:
+    /// sled 0.34 meeting a full disk in the middle of a write can leave its I/O threads
+    /// waiting forever (seen here on a full tmpfs), so that tarn would hang instead of
+    /// stopping. A commit needs twice its size (sled may rewrite it into a new segment)
+    /// plus [`SPACE_MARGIN`]. Space taken by another process between this check and the
+    /// write can still reach sled; the check makes the common case (the disk filled by
+    /// the campaign's own outputs, or by something before the commit) a clean refusal.
+    fn check_space(&self, bytes: u64) -> Result<(), StoreError> {
+        let Ok(fs) = nix::sys::statvfs::statvfs(&Store::db_path(&self.dir)) else {
+            return Ok(());
+        };
+        let free = fs.blocks_available().saturating_mul(fs.fragment_size());
+        let need = bytes.saturating_mul(2).saturating_add(SPACE_MARGIN);
+        if free < need {
+            return Err(StoreError::NoSpace {
+                path: self.dir.display().to_string(),
+                bytes,
+                need,
+                free,
+            });
+        }
+        Ok(())
+    }
+
     /// Records the flushed commit count beside the database (temporary file, then a
     /// rename). A failure (the disk is full) only weakens the next damage check — the
     /// batch itself is committed — so it is logged, not returned.
@@ -651,6 +690,7 @@ impl Store {
         }
         // One commit at a time, so that the counter rises in the order of the batches.
         let _turn = self.commit.lock().unwrap_or_else(|p| p.into_inner());
+        self.check_space(batch.bytes)?;
         let commits = self.commits.load(Ordering::SeqCst) + 1;
         batch
             .inner
