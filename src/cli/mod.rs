@@ -152,11 +152,12 @@ pub enum Command {
     },
     /// Benchmarks that print figures (one JSON object per row with --json).
     #[command(
-        after_help = "Benchmarks:\n  engine  orchestration overhead per task, reopen time, engine memory\n  energy  energy-and-force throughput against the measured f64 peak; an external model through its pipe\n  flow    RealNVP training and sampling throughput against the measured f32 GEMM peak\n  discovery  energy evaluations to find every state and to converge free energies: tarn's loop against plain Metropolis and Langevin (--system, --seeds, --plots)"
+        after_help = "Benchmarks:\n  engine  orchestration overhead per task, reopen time, engine memory\n  energy  energy-and-force throughput against the measured f64 peak; an external model through its pipe\n  flow    RealNVP training and sampling throughput against the measured f32 GEMM peak\n  discovery  evaluations to find every state and to converge free energies, tarn against\n          plain Metropolis and Langevin (--system, --seeds, --plots; about 35 min for all)\n\nExamples:\n  tarn bench flow --json\n  tarn bench discovery --system muller-brown --seeds 3 --plots figures/"
     )]
     Bench {
-        /// What to measure: engine, energy or flow.
+        /// What to measure: engine, energy, flow or discovery.
         what: String,
+        /// One JSON object per row instead of key=value lines.
         #[arg(long)]
         json: bool,
         /// Tasks to run in the engine benchmark.
