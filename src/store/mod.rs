@@ -61,6 +61,10 @@ pub const CHUNK: usize = 4 << 20;
 /// access pattern (a round's arrays are read once).
 pub const CACHE_BYTES: u64 = 64 << 20;
 
+/// How long a held store lock is asked again before the store counts as in use by
+/// another process (see `Store::probe_lock`).
+const LOCK_WAIT: std::time::Duration = std::time::Duration::from_millis(1500);
+
 /// The file in the campaign directory, beside `db/`, where tarn records how many
 /// batches it has committed and flushed (written through a temporary file and a
 /// rename after every flush). It can only lag the store, never lead it: a store that
@@ -296,21 +300,32 @@ impl Store {
 
     /// Refuses with [`StoreError::Locked`] when another process holds the database's
     /// lock (sled takes an exclusive `flock` on its `db` file). The probe takes and
-    /// releases the same lock on a read-only handle, so it writes nothing.
+    /// releases the same lock on a read-only handle, so it writes nothing. A store
+    /// closed a moment ago in this same process keeps its lock until sled's flusher
+    /// thread has let go of the file, so a held lock is asked again for up to
+    /// [`LOCK_WAIT`] before it counts as another process's.
     fn probe_lock(dir: &Path) -> Result<(), StoreError> {
         use nix::fcntl::{Flock, FlockArg};
         let file = Store::db_path(dir).join("db");
-        let Ok(handle) = std::fs::File::open(&file) else {
-            // No log file yet (or unreadable): sled's own open reports it.
-            return Ok(());
-        };
-        match Flock::lock(handle, FlockArg::LockExclusiveNonblock) {
-            Ok(lock) => {
-                drop(lock);
-                Ok(())
+        let deadline = std::time::Instant::now() + LOCK_WAIT;
+        loop {
+            let Ok(handle) = std::fs::File::open(&file) else {
+                // No log file yet (or unreadable): sled's own open reports it.
+                return Ok(());
+            };
+            match Flock::lock(handle, FlockArg::LockExclusiveNonblock) {
+                Ok(lock) => {
+                    drop(lock);
+                    return Ok(());
+                }
+                Err((_, nix::errno::Errno::EWOULDBLOCK)) => {
+                    if std::time::Instant::now() >= deadline {
+                        return Err(Store::locked(dir));
+                    }
+                    std::thread::sleep(std::time::Duration::from_millis(20));
+                }
+                Err(_) => return Ok(()),
             }
-            Err((_, nix::errno::Errno::EWOULDBLOCK)) => Err(Store::locked(dir)),
-            Err(_) => Ok(()),
         }
     }
 
