@@ -43,7 +43,7 @@ pub mod records;
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::Mutex;
-use std::time::{SystemTime, UNIX_EPOCH};
+use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
 
 use serde::de::DeserializeOwned;
 use serde::Serialize;
@@ -61,9 +61,16 @@ pub const CHUNK: usize = 4 << 20;
 /// access pattern (a round's arrays are read once).
 pub const CACHE_BYTES: u64 = 64 << 20;
 
-/// How long a held store lock is asked again before the store counts as in use by
-/// another process (see `Store::probe_lock`).
-const LOCK_WAIT: std::time::Duration = std::time::Duration::from_millis(1500);
+/// How long a held lock on a store this process opened before is asked again before
+/// the store counts as in use by another process (see `Store::probe_lock`).
+const LOCK_WAIT: Duration = Duration::from_millis(1500);
+
+/// The database directories this process has opened (see `Store::probe_lock`).
+fn opened_here() -> std::sync::MutexGuard<'static, std::collections::BTreeSet<PathBuf>> {
+    static OPENED: std::sync::Mutex<std::collections::BTreeSet<PathBuf>> =
+        std::sync::Mutex::new(std::collections::BTreeSet::new());
+    OPENED.lock().unwrap_or_else(|e| e.into_inner())
+}
 
 /// The file in the campaign directory, beside `db/`, where tarn records how many
 /// batches it has committed and flushed (written through a temporary file and a
@@ -272,6 +279,7 @@ impl Store {
     /// Opens the sled database at `path`; `dir` is the campaign directory whose
     /// holder a lock refusal names.
     fn open_db_at(path: &Path, dir: &Path) -> Result<sled::Db, StoreError> {
+        opened_here().insert(path.to_path_buf());
         sled::Config::new()
             .path(path)
             .cache_capacity(CACHE_BYTES)
@@ -301,13 +309,15 @@ impl Store {
     /// Refuses with [`StoreError::Locked`] when another process holds the database's
     /// lock (sled takes an exclusive `flock` on its `db` file). The probe takes and
     /// releases the same lock on a read-only handle, so it writes nothing. A store
-    /// closed a moment ago in this same process keeps its lock until sled's flusher
-    /// thread has let go of the file, so a held lock is asked again for up to
-    /// [`LOCK_WAIT`] before it counts as another process's.
+    /// that this same process opened and closed a moment ago keeps its lock until
+    /// sled's flusher thread has let go of the file, so for such a store a held lock
+    /// is asked again for up to [`LOCK_WAIT`]; any other held lock is another process's
+    /// and refused at once.
     fn probe_lock(dir: &Path) -> Result<(), StoreError> {
         use nix::fcntl::{Flock, FlockArg};
         let file = Store::db_path(dir).join("db");
-        let deadline = std::time::Instant::now() + LOCK_WAIT;
+        let ours = opened_here().contains(&Store::db_path(dir));
+        let deadline = Instant::now() + if ours { LOCK_WAIT } else { Duration::ZERO };
         loop {
             let Ok(handle) = std::fs::File::open(&file) else {
                 // No log file yet (or unreadable): sled's own open reports it.
@@ -319,10 +329,10 @@ impl Store {
                     return Ok(());
                 }
                 Err((_, nix::errno::Errno::EWOULDBLOCK)) => {
-                    if std::time::Instant::now() >= deadline {
+                    if Instant::now() >= deadline {
                         return Err(Store::locked(dir));
                     }
-                    std::thread::sleep(std::time::Duration::from_millis(20));
+                    std::thread::sleep(Duration::from_millis(20));
                 }
                 Err(_) => return Ok(()),
             }
