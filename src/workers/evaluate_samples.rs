@@ -51,10 +51,7 @@ impl Default for SampleParams {
 /// Checks `mbar` and `reweight-bias` parameters (for `tarn check`).
 pub fn check(params: &serde_json::Value, dim: usize) -> Result<(), String> {
     let p = serde_json::from_value::<SampleParams>(params.clone()).map_err(|e| e.to_string())?;
-    match &p.fingerprint {
-        Some(fp) => fp.validate(dim).map_err(|e| format!("fingerprint: {e}")),
-        None => Ok(()),
-    }
+    super::states::check_fingerprint(p.fingerprint.as_ref(), dim)
 }
 
 /// The `mbar` kind: every explore stage is a thermodynamic state at its declared

@@ -37,10 +37,15 @@ impl Default for Matching {
 impl Matching {
     /// Checks the fingerprint against the system's dimension (for `tarn check`).
     pub fn validate(&self, dim: usize) -> Result<(), String> {
-        match &self.fingerprint {
-            Some(fp) => fp.validate(dim).map_err(|e| format!("fingerprint: {e}")),
-            None => Ok(()),
-        }
+        check_fingerprint(self.fingerprint.as_ref(), dim)
+    }
+}
+
+/// Checks a stage's optional `fingerprint` key against the system's dimension.
+pub fn check_fingerprint(fp: Option<&Fingerprint>, dim: usize) -> Result<(), String> {
+    match fp {
+        Some(fp) => fp.validate(dim).map_err(|e| format!("fingerprint: {e}")),
+        None => Ok(()),
     }
 }
 
