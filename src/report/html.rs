@@ -864,23 +864,40 @@ fn landscape_section(store: &Store, c: &Context) -> anyhow::Result<String> {
         plots::thin(c.rounds.len(), MAX_LANDSCAPE_ROUNDS).len()
     );
     let empty = (samples.is_empty() && minima.is_empty()).then_some("no sample stored yet");
-    out.push_str(
-        &figure(
-            "plot-landscape",
-            &svg,
-            "explore samples coloured by round over energy contours",
-            &escape(&caption),
-            empty,
-        )
-        .replacen("class=\"plot\"", "class=\"plot wide\"", 1),
+    close_round_scatter(
+        &mut out,
+        "plot-landscape",
+        &svg,
+        "explore samples coloured by round over energy contours",
+        &caption,
+        empty,
+        (r0, r1),
     );
+    Ok(out)
+}
+
+/// The end of a sample-scatter section: the wide figure, the round colour ramp under
+/// it, and the section's closing tag.
+fn close_round_scatter(
+    out: &mut String,
+    id: &str,
+    svg: &str,
+    title: &str,
+    caption: &str,
+    empty: Option<&str>,
+    (r0, r1): (u32, u32),
+) {
+    out.push_str(&figure(id, svg, title, &escape(caption), empty).replacen(
+        "class=\"plot\"",
+        "class=\"plot wide\"",
+        1,
+    ));
     let _ = writeln!(
         out,
         "<div class=\"ramp\" style=\"background:{}\"></div><div class=\"ramp-labels\"><span>round {r0}</span><span>colour = round</span><span>round {r1}</span></div>",
         plots::round_ramp_css()
     );
     out.push_str("</section>\n");
-    Ok(out)
 }
 
 /// The first two dihedrals of the dedup stage's fingerprint, when it is a dihedral
@@ -948,22 +965,15 @@ fn ramachandran_section(
         plots::thin(c.rounds.len(), MAX_LANDSCAPE_ROUNDS).len()
     );
     let empty = (samples.is_empty() && minima.is_empty()).then_some("no sample stored yet");
-    out.push_str(
-        &figure(
-            "plot-ramachandran",
-            &svg,
-            "explore samples at their backbone dihedrals, coloured by round",
-            &escape(&caption),
-            empty,
-        )
-        .replacen("class=\"plot\"", "class=\"plot wide\"", 1),
+    close_round_scatter(
+        &mut out,
+        "plot-ramachandran",
+        &svg,
+        "explore samples at their backbone dihedrals, coloured by round",
+        &caption,
+        empty,
+        (r0, r1),
     );
-    let _ = writeln!(
-        out,
-        "<div class=\"ramp\" style=\"background:{}\"></div><div class=\"ramp-labels\"><span>round {r0}</span><span>colour = round</span><span>round {r1}</span></div>",
-        plots::round_ramp_css()
-    );
-    out.push_str("</section>\n");
     Ok(out)
 }
 

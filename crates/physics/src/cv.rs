@@ -419,28 +419,34 @@ fn dihedral_and_gradient(x: &[f64], atoms: [usize; 4], grad: &mut [f64]) -> f64 
     phi
 }
 
+/// Four atoms i = (1,0,0), j = 0, k = (0,0,1), l = (cos t, sin t, 1): the dihedral is
+/// t by construction (looking along +z from j to k, i must turn by t to cover l). A test
+/// fixture shared with the fingerprint tests.
+#[cfg(test)]
+pub(crate) fn four_atoms_with_dihedral(t_deg: f64) -> Vec<f64> {
+    let t = t_deg.to_radians();
+    vec![
+        1.0,
+        0.0,
+        0.0,
+        0.0,
+        0.0,
+        0.0,
+        0.0,
+        0.0,
+        1.0,
+        t.cos(),
+        t.sin(),
+        1.0,
+    ]
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
 
-    /// Four atoms i = (1,0,0), j = 0, k = (0,0,1), l = (cos t, sin t, 1): the dihedral is
-    /// t by construction (looking along +z from j to k, i must turn by t to cover l).
     fn geometry(t_deg: f64) -> Vec<f64> {
-        let t = t_deg.to_radians();
-        vec![
-            1.0,
-            0.0,
-            0.0,
-            0.0,
-            0.0,
-            0.0,
-            0.0,
-            0.0,
-            1.0,
-            t.cos(),
-            t.sin(),
-            1.0,
-        ]
+        four_atoms_with_dihedral(t_deg)
     }
 
     #[test]

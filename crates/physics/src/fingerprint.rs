@@ -247,21 +247,7 @@ mod tests {
 
     /// A 3-D configuration of four atoms whose dihedral 0-1-2-3 is `t` degrees.
     fn four_atoms(t_deg: f64) -> Vec<f64> {
-        let t = t_deg.to_radians();
-        vec![
-            1.0,
-            0.0,
-            0.0,
-            0.0,
-            0.0,
-            0.0,
-            0.0,
-            0.0,
-            1.0,
-            t.cos(),
-            t.sin(),
-            1.0,
-        ]
+        crate::cv::four_atoms_with_dihedral(t_deg)
     }
 
     #[test]
