@@ -163,6 +163,17 @@ fn built_in_params_are_checked_before_anything_runs() {
         e.contains("explore[0].params: langevin: invalid parameter `dt`: must be positive"),
         "{e}"
     );
+    let wrong_type = GOOD.replace(
+        "kind = \"hold\"\nwalkers = 2",
+        "kind = \"metropolis\"\nwalkers = 2\n[explore.params]\nn_steps = \"lots\"",
+    );
+    let e = parse(&wrong_type).unwrap_err().to_string();
+    assert!(
+        e.contains(
+            "explore[0].params: metropolis: n_steps: invalid type: string \"lots\", expected u64"
+        ),
+        "{e}"
+    );
     let hold = GOOD.replace("walkers = 2", "walkers = 2\n[explore.params]\nsteps = 3");
     assert!(parse(&hold)
         .unwrap_err()

@@ -69,7 +69,7 @@ impl Default for ReweightParams {
 
 /// Checks `reweight` parameters (for `tarn check`).
 pub fn check(params: &serde_json::Value, dim: usize) -> Result<(), String> {
-    let p = serde_json::from_value::<ReweightParams>(params.clone()).map_err(|e| e.to_string())?;
+    let p: ReweightParams = super::params_from(params)?;
     super::states::check_fingerprint(p.fingerprint.as_ref(), dim)
 }
 

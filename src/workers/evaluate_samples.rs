@@ -50,7 +50,7 @@ impl Default for SampleParams {
 
 /// Checks `mbar` and `reweight-bias` parameters (for `tarn check`).
 pub fn check(params: &serde_json::Value, dim: usize) -> Result<(), String> {
-    let p = serde_json::from_value::<SampleParams>(params.clone()).map_err(|e| e.to_string())?;
+    let p: SampleParams = super::params_from(params)?;
     super::states::check_fingerprint(p.fingerprint.as_ref(), dim)
 }
 

@@ -74,6 +74,21 @@ impl Task {
     }
 }
 
+/// Reads a stage's params, naming the key a bad value sits under (e.g. `n_steps:
+/// invalid type: string "lots", expected u64`).
+pub(crate) fn params_from<T: DeserializeOwned>(v: &serde_json::Value) -> Result<T, String> {
+    serde_path_to_error::deserialize(v.clone()).map_err(|e| {
+        let path = e.path().to_string();
+        let inner = e.into_inner().to_string();
+        // An unknown key names itself already.
+        if path.is_empty() || path == "." || inner.starts_with("unknown field") {
+            inner
+        } else {
+            format!("{path}: {inner}")
+        }
+    })
+}
+
 /// Checks a built-in kind's parameters without running it, so that `tarn check` (and
 /// `tarn run` before its first task) catches a mistyped or out-of-range key before a
 /// campaign starts, instead of after a worker's retries.
@@ -90,26 +105,23 @@ pub fn check_params(
         serde_json::Value::Null => serde_json::json!({}),
         other => other.clone(),
     };
-    fn de<T: DeserializeOwned>(v: &serde_json::Value) -> Result<T, String> {
-        serde_json::from_value(v.clone()).map_err(|e| e.to_string())
-    }
     match kind {
         "hold" => match v.as_object() {
             Some(o) if o.is_empty() => Ok(()),
             _ => Err("the hold kind takes no params".into()),
         },
-        "metropolis" => de::<MetropolisParams>(&v).map(|_| ()),
-        "langevin" => de::<LangevinParams>(&v)?
+        "metropolis" => params_from::<MetropolisParams>(&v).map(|_| ()),
+        "langevin" => params_from::<LangevinParams>(&v)?
             .validate()
             .map_err(|e| e.to_string()),
-        "metadynamics" => de::<MetadParams>(&v)?
+        "metadynamics" => params_from::<MetadParams>(&v)?
             .validate(dim, system.particle_dims())
             .map_err(|e| e.to_string()),
-        "latent-metropolis" => de::<LatentMcParams>(&v)?
+        "latent-metropolis" => params_from::<LatentMcParams>(&v)?
             .validate()
             .map_err(|e| e.to_string()),
         "generate" => flow::check_generate(&v),
-        "quench" => de::<dedup::QuenchParams>(&v)?.validate(dim),
+        "quench" => params_from::<dedup::QuenchParams>(&v)?.validate(dim),
         "realnvp" => flow::check_retrain(system, dim, kt, &v),
         "reweight" => evaluate::check(&v, dim),
         "mbar" | "reweight-bias" => evaluate_samples::check(&v, dim),
