@@ -9,6 +9,7 @@
 pub mod bench;
 mod flow;
 mod frame;
+mod fused;
 mod io;
 mod real;
 mod sample;

@@ -279,7 +279,7 @@ pub(crate) fn matmul_s<T: Real>(
 /// 16) and k <= 512, as in a narrow conditioner's hidden layers: six rows of c stay in
 /// 24 registers while b's rows stream from L1. On this machine it ran 5-15% faster than
 /// the general GEMM for 1024 x 64 x 64, whose packing dominates at that size.
-mod narrow {
+pub(crate) mod narrow {
     use super::Real;
     use std::any::TypeId;
 
@@ -305,7 +305,7 @@ mod narrow {
     ///
     /// # Safety
     /// `T` must be f32.
-    pub(super) unsafe fn as_f32<T: Real>(x: &[T]) -> &[f32] {
+    pub(crate) unsafe fn as_f32<T: Real>(x: &[T]) -> &[f32] {
         debug_assert!(TypeId::of::<T>() == TypeId::of::<f32>());
         unsafe { std::slice::from_raw_parts(x.as_ptr() as *const f32, x.len()) }
     }
@@ -314,7 +314,7 @@ mod narrow {
     ///
     /// # Safety
     /// `T` must be f32.
-    pub(super) unsafe fn as_f32_mut<T: Real>(x: &mut [T]) -> &mut [f32] {
+    pub(crate) unsafe fn as_f32_mut<T: Real>(x: &mut [T]) -> &mut [f32] {
         debug_assert!(TypeId::of::<T>() == TypeId::of::<f32>());
         unsafe { std::slice::from_raw_parts_mut(x.as_mut_ptr() as *mut f32, x.len()) }
     }

@@ -16,6 +16,7 @@
 //!   gradients and g_a, which is added to the gradient of the conditioning half.
 
 use crate::flow::{Coupling, Flow};
+use crate::fused;
 use crate::real::{
     act_backward, add_col_sums, bias_act_forward, matmul, matmul_s, multiversion, tanh_fast, Real,
 };
@@ -298,13 +299,23 @@ impl<T: Real> Tape<T> {
         let d = flow.dim();
         let lt = &mut self.layers[if self.record { k } else { 0 }];
         let record = self.record;
-        let da = c.cond.len();
-        for i in 0..n {
-            let row = &self.state[i * d..(i + 1) * d];
-            for (dst, &j) in lt.a_in[i * da..(i + 1) * da].iter_mut().zip(&c.cond) {
-                *dst = row[j];
-            }
+        let clamp = T::of(flow.spec.clamp);
+        if !record && self.gemm_threads == 1 && fused::applies::<T>(c, flow.spec.activation, n) {
+            fused::coupling(
+                &flow.params,
+                c,
+                n,
+                d,
+                gen,
+                flow.spec.clamp,
+                &mut self.state,
+                &mut self.logdet,
+                [&mut lt.out, &mut lt.s, &mut lt.b_out],
+                &mut self.scratch,
+            );
+            return;
         }
+        gather_rows(n, d, &c.cond, &self.state, &mut lt.a_in);
         mlp_forward(
             &flow.params,
             c,
@@ -315,7 +326,6 @@ impl<T: Real> Tape<T> {
             &mut self.scratch,
             record,
         );
-        let clamp = T::of(flow.spec.clamp);
         coupling_elementwise(
             n,
             d,
@@ -576,6 +586,17 @@ fn mlp_forward<T: Real>(
             );
             let aux: &mut [T] = if record { &mut lt.aux[l] } else { &mut [] };
             bias_act_forward(Some(act), n, b, out, aux);
+        }
+    }
+}
+
+/// Copies the `cols` columns of the first `n` rows of `state` (`d` wide) into `out`.
+fn gather_rows<T: Real>(n: usize, d: usize, cols: &[usize], state: &[T], out: &mut [T]) {
+    let da = cols.len();
+    for i in 0..n {
+        let row = &state[i * d..(i + 1) * d];
+        for (dst, &j) in out[i * da..(i + 1) * da].iter_mut().zip(cols) {
+            *dst = row[j];
         }
     }
 }

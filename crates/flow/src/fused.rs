@@ -1,0 +1,524 @@
+//! A fused conditioner forward pass for passes that keep no tape (sampling, latent
+//! Monte Carlo, density evaluation), on f32 with AVX-512.
+//!
+//! A narrow conditioner (two SiLU hidden layers at most 64 wide, as in low-dimensional
+//! systems) spends as much time between its matrix products as in them when every
+//! layer is a separate call: the hidden activations go to memory and back, and each
+//! call has its own loop set-up. Here six rows at a time go through the whole MLP with
+//! the second hidden layer held in 24 vector registers, the conditioning half gathered
+//! straight from the flow state, and SiLU computed in registers with a reciprocal
+//! estimate refined by one Newton step instead of a division.
+//!
+//! Results agree with the layer-by-layer path to float32 rounding (a few ulp), not bit
+//! for bit: the sums run in another order. Owns: this one kernel and the test of its
+//! agreement. Must not touch: taped passes (training keeps the layer-by-layer path, whose
+//! stored activations its backward pass reads).
+
+use crate::flow::Coupling;
+use crate::real::Real;
+use crate::spec::Activation;
+
+/// Rows of one block: the second hidden layer of 6 rows fills 24 of the 32 registers.
+const ROWS: usize = 6;
+
+/// Whether the fused kernel handles coupling `c` for `n` rows on this CPU: f32, SiLU,
+/// two hidden layers of one width that is a multiple of 16 up to 64, at most 64
+/// conditioning inputs and 16 outputs (8 transformed coordinates), at least one full
+/// block of rows.
+pub(crate) fn applies<T: Real>(c: &Coupling, act: Activation, n: usize) -> bool {
+    #[cfg(target_arch = "x86_64")]
+    {
+        use std::any::TypeId;
+        if TypeId::of::<T>() != TypeId::of::<f32>() || act != Activation::Silu || n < ROWS {
+            return false;
+        }
+        let [l1, l2, l3] = c.dense.as_slice() else {
+            return false;
+        };
+        let h = l1.n_out;
+        h.is_multiple_of(16)
+            && (16..=64).contains(&h)
+            && l1.n_in == c.cond.len()
+            && l1.n_in <= 64
+            && (l2.n_in, l2.n_out, l3.n_in) == (h, h, h)
+            && (1..=16).contains(&l3.n_out)
+            && std::is_x86_feature_detected!("avx512f")
+    }
+    #[cfg(not(target_arch = "x86_64"))]
+    {
+        let _ = (c, act, n);
+        false
+    }
+}
+
+/// One whole coupling layer `c` on the first `n` rows of `state` (`d` columns): the
+/// conditioner on the conditioning columns, then the affine map of the transformed
+/// columns in place (b' = b e^s + t when `gen`, else (b - t) e^-s, with s = clamp
+/// tanh(raw / clamp)), adding +-sum(s) to each row's `logdet`. `out` (at least n x
+/// outputs values), `s_buf` and `b_buf` (n x transformed each) are work space, and
+/// `scratch` holds the transposed output weights; it grows once and is then reused.
+///
+/// Callers check `applies` first; a call that fails it is a bug in this crate.
+#[allow(clippy::too_many_arguments)]
+pub(crate) fn coupling<T: Real>(
+    params: &[T],
+    c: &Coupling,
+    n: usize,
+    d: usize,
+    gen: bool,
+    clamp: f64,
+    state: &mut [T],
+    logdet: &mut [T],
+    bufs: [&mut [T]; 3],
+    scratch: &mut Vec<T>,
+) {
+    assert!(applies::<T>(c, Activation::Silu, n), "fused kernel misused");
+    let [l1, l2, l3] = [c.dense[0], c.dense[1], c.dense[2]];
+    let (h, n_out) = (l1.n_out, l3.n_out);
+    let [out, s_buf, b_buf] = bufs;
+    assert!(state.len() >= n * d && logdet.len() >= n && n_out == 2 * c.trans.len());
+    assert!(out.len() >= n * n_out && s_buf.len() >= n * n_out / 2 && b_buf.len() >= n * n_out / 2);
+    assert!(c.cond.iter().chain(&c.trans).all(|&j| j < d));
+    assert!(params.len() >= l3.b + n_out && params.len() >= l1.w.max(l2.w).max(l3.w));
+    // Output weights transposed (one row of h per output) for the dot-product form.
+    scratch.clear();
+    scratch.extend((0..n_out).flat_map(|j| (0..h).map(move |q| params[l3.w + q * n_out + j])));
+    #[cfg(target_arch = "x86_64")]
+    {
+        use crate::real::narrow::{as_f32, as_f32_mut};
+        // SAFETY: `applies` checked that T is f32 and that the CPU has AVX-512F; the
+        // lengths read and written are asserted above.
+        unsafe {
+            let p = as_f32(params);
+            let k = Kernel {
+                cond: &c.cond,
+                trans: &c.trans,
+                w1: &p[l1.w..l1.w + l1.n_in * h],
+                b1: &p[l1.b..l1.b + h],
+                w2: &p[l2.w..l2.w + h * h],
+                b2: &p[l2.b..l2.b + h],
+                w3: &p[l3.w..l3.w + h * n_out],
+                w3t: as_f32(scratch),
+                b3: &p[l3.b..l3.b + n_out],
+                n_out,
+                gen,
+                clamp: clamp as f32,
+            };
+            let (st, out) = (as_f32_mut(state), as_f32_mut(out));
+            let (raw, t) = out[..n * n_out].split_at_mut(n * n_out / 2);
+            match h / 16 {
+                1 => k.conditioner::<1>(n, d, st, raw, t),
+                2 => k.conditioner::<2>(n, d, st, raw, t),
+                3 => k.conditioner::<3>(n, d, st, raw, t),
+                _ => k.conditioner::<4>(n, d, st, raw, t),
+            }
+            let bufs = [raw, t, as_f32_mut(s_buf), as_f32_mut(b_buf)];
+            k.affine(n, d, st, as_f32_mut(logdet), bufs);
+        }
+    }
+}
+
+/// One coupling's conditioner weights (as f32 slices) and affine settings.
+#[cfg(target_arch = "x86_64")]
+struct Kernel<'a> {
+    cond: &'a [usize],
+    trans: &'a [usize],
+    w1: &'a [f32],
+    b1: &'a [f32],
+    w2: &'a [f32],
+    b2: &'a [f32],
+    w3: &'a [f32],
+    w3t: &'a [f32],
+    b3: &'a [f32],
+    n_out: usize,
+    gen: bool,
+    clamp: f32,
+}
+
+#[cfg(target_arch = "x86_64")]
+mod simd {
+    use std::arch::x86_64::*;
+
+    /// e^x in 16 lanes for |x| <= 87: x = n ln2 + r with |r| <= ln2/2 (ln 2 split into a
+    /// high and a low part), e^r by a degree-5 polynomial fitted for relative error with
+    /// its constant term held at 1 (so e^0 = 1 exactly; 1.5e-7 relative in f32, as good
+    /// as the degree-6 Taylor polynomial of `exp_f32` with one multiply-add fewer), and
+    /// 2^n applied by `vscalefps`. Inputs are clamped to [-87, 88]; NaN propagates.
+    #[target_feature(enable = "avx512f")]
+    #[inline]
+    pub(super) fn exp(x: __m512) -> __m512 {
+        // Operand order keeps NaN: vmaxps/vminps return the second operand on NaN.
+        let x = _mm512_min_ps(
+            _mm512_set1_ps(88.0),
+            _mm512_max_ps(_mm512_set1_ps(-87.0), x),
+        );
+        let n = _mm512_roundscale_ps::<{ _MM_FROUND_TO_NEAREST_INT | _MM_FROUND_NO_EXC }>(
+            _mm512_mul_ps(x, _mm512_set1_ps(std::f32::consts::LOG2_E)),
+        );
+        let r = _mm512_fnmadd_ps(
+            n,
+            _mm512_set1_ps(1.428_606_8e-6),
+            _mm512_fnmadd_ps(n, _mm512_set1_ps(0.693_145_75), x),
+        );
+        let mut p = _mm512_set1_ps(0.008_290_31);
+        for c in [0.041_897_934, 0.166_676_36, 0.499_991_5, 0.999_999_7, 1.0] {
+            p = _mm512_fmadd_ps(p, r, _mm512_set1_ps(c));
+        }
+        _mm512_scalef_ps(p, n)
+    }
+
+    /// 1 / x from `vrcp14ps` (14 bits) refined by one Newton step to about float32
+    /// precision (for 0 < x < 2^126).
+    #[target_feature(enable = "avx512f")]
+    #[inline]
+    fn recip(x: __m512) -> __m512 {
+        let r = _mm512_rcp14_ps(x);
+        _mm512_fmadd_ps(r, _mm512_fnmadd_ps(x, r, _mm512_set1_ps(1.0)), r)
+    }
+
+    /// SiLU p / (1 + e^-p), with the reciprocal of `recip` instead of a division.
+    #[target_feature(enable = "avx512f")]
+    #[inline]
+    pub(super) fn silu(p: __m512) -> __m512 {
+        let den = _mm512_add_ps(
+            _mm512_set1_ps(1.0),
+            exp(_mm512_sub_ps(_mm512_setzero_ps(), p)),
+        );
+        _mm512_mul_ps(p, recip(den))
+    }
+
+    /// c tanh(x / c) as c (1 - 2 / (1 + e^{2x/c})), the form of `tanh_fast`.
+    #[target_feature(enable = "avx512f")]
+    #[inline]
+    pub(super) fn clamped_tanh(x: __m512, c: f32) -> __m512 {
+        let e = exp(_mm512_mul_ps(x, _mm512_set1_ps(2.0 / c)));
+        let q = _mm512_div_ps(_mm512_set1_ps(2.0), _mm512_add_ps(_mm512_set1_ps(1.0), e));
+        _mm512_mul_ps(_mm512_set1_ps(c), _mm512_sub_ps(_mm512_set1_ps(1.0), q))
+    }
+}
+
+#[cfg(target_arch = "x86_64")]
+impl Kernel<'_> {
+    /// The conditioner of all `n` rows (n >= ROWS), in blocks of ROWS, writing raw s to
+    /// `raw` and t to `t` (n x transformed each). The last block overlaps the one before
+    /// instead of running a scalar tail (rows are independent and only read).
+    #[target_feature(enable = "avx512f")]
+    fn conditioner<const NV: usize>(
+        &self,
+        n: usize,
+        d: usize,
+        state: &[f32],
+        raw: &mut [f32],
+        t: &mut [f32],
+    ) {
+        use std::arch::x86_64::*;
+        let h = 16 * NV;
+        let db = self.trans.len();
+        let mut hid = [0.0f32; ROWS * 64];
+        let mut i = 0;
+        while i < n {
+            let i0 = if i + ROWS <= n { i } else { n - ROWS };
+            // SAFETY (whole block): every offset stays inside the slices, whose lengths
+            // the caller asserted (rows i0..i0+ROWS <= n, columns < d, h, n_out).
+            unsafe {
+                // First hidden layer, row by row, into `hid` (its entries are broadcast
+                // one at a time by the second layer).
+                for r in 0..ROWS {
+                    let row = state.as_ptr().add((i0 + r) * d);
+                    let mut acc = [_mm512_setzero_ps(); NV];
+                    for (p, &j) in self.cond.iter().enumerate() {
+                        let a = _mm512_set1_ps(*row.add(j));
+                        for (v, accv) in acc.iter_mut().enumerate() {
+                            let w = _mm512_loadu_ps(self.w1.as_ptr().add(p * h + 16 * v));
+                            *accv = _mm512_fmadd_ps(a, w, *accv);
+                        }
+                    }
+                    for (v, &accv) in acc.iter().enumerate() {
+                        let b = _mm512_loadu_ps(self.b1.as_ptr().add(16 * v));
+                        let y = simd::silu(_mm512_add_ps(accv, b));
+                        _mm512_storeu_ps(hid.as_mut_ptr().add(r * h + 16 * v), y);
+                    }
+                }
+                // Second hidden layer: ROWS x NV accumulators stay in registers.
+                let mut acc = [[_mm512_setzero_ps(); NV]; ROWS];
+                for p in 0..h {
+                    let mut w = [_mm512_setzero_ps(); NV];
+                    for (v, wv) in w.iter_mut().enumerate() {
+                        *wv = _mm512_loadu_ps(self.w2.as_ptr().add(p * h + 16 * v));
+                    }
+                    for (r, accr) in acc.iter_mut().enumerate() {
+                        let a = _mm512_set1_ps(*hid.as_ptr().add(r * h + p));
+                        for v in 0..NV {
+                            accr[v] = _mm512_fmadd_ps(a, w[v], accr[v]);
+                        }
+                    }
+                }
+                for accr in acc.iter_mut() {
+                    for (v, x) in accr.iter_mut().enumerate() {
+                        let b = _mm512_loadu_ps(self.b2.as_ptr().add(16 * v));
+                        *x = simd::silu(_mm512_add_ps(*x, b));
+                    }
+                }
+                let o = i0 * db;
+                self.output_layer::<NV>(
+                    &acc,
+                    &mut hid,
+                    &mut raw[o..o + ROWS * db],
+                    &mut t[o..o + ROWS * db],
+                );
+            }
+            i = i0 + ROWS;
+        }
+    }
+
+    /// The output layer of one block (raw s and t of its ROWS rows) from the second
+    /// hidden layer in registers: dot products for up to 4 outputs, otherwise one masked
+    /// row of outputs per row from `hid`.
+    #[target_feature(enable = "avx512f")]
+    #[inline]
+    fn output_layer<const NV: usize>(
+        &self,
+        acc: &[[std::arch::x86_64::__m512; NV]; ROWS],
+        hid: &mut [f32; ROWS * 64],
+        raw: &mut [f32],
+        t: &mut [f32],
+    ) {
+        use std::arch::x86_64::*;
+        let (h, n_out, db) = (16 * NV, self.n_out, self.trans.len());
+        let mut put = |r: usize, j: usize, v: f32| {
+            if j < db {
+                raw[r * db + j] = v;
+            } else {
+                t[r * db + j - db] = v;
+            }
+        };
+        // SAFETY: w3t holds n_out x h values, w3 h x n_out and b3 n_out (asserted by the
+        // caller); hid is a fixed array indexed below ROWS x h.
+        unsafe {
+            if n_out <= 4 {
+                for (r, accr) in acc.iter().enumerate() {
+                    for j in 0..n_out {
+                        let mut s = _mm512_setzero_ps();
+                        for (v, &x) in accr.iter().enumerate() {
+                            let w = _mm512_loadu_ps(self.w3t.as_ptr().add(j * h + 16 * v));
+                            s = _mm512_fmadd_ps(x, w, s);
+                        }
+                        put(r, j, _mm512_reduce_add_ps(s) + self.b3[j]);
+                    }
+                }
+                return;
+            }
+            for (r, accr) in acc.iter().enumerate() {
+                for (v, &x) in accr.iter().enumerate() {
+                    _mm512_storeu_ps(hid.as_mut_ptr().add(r * h + 16 * v), x);
+                }
+            }
+            let mask: __mmask16 = ((1u32 << n_out) - 1) as __mmask16;
+            let bias = _mm512_maskz_loadu_ps(mask, self.b3.as_ptr());
+            let mut row = [0.0f32; 16];
+            for r in 0..ROWS {
+                let mut s = bias;
+                for q in 0..h {
+                    let w = _mm512_maskz_loadu_ps(mask, self.w3.as_ptr().add(q * n_out));
+                    s = _mm512_fmadd_ps(_mm512_set1_ps(*hid.as_ptr().add(r * h + q)), w, s);
+                }
+                _mm512_storeu_ps(row.as_mut_ptr(), s);
+                for (j, &v) in row[..n_out].iter().enumerate() {
+                    put(r, j, v);
+                }
+            }
+        }
+    }
+
+    /// The affine step of all `n` rows: the transformed values are packed (r-major,
+    /// `trans` order) into `b`, mapped 16 at a time with s kept in `s`, and written
+    /// back, with +-sum(s) added to each row's `logdet`. `bufs` are raw s, t, s and b,
+    /// n x transformed each.
+    #[target_feature(enable = "avx512f")]
+    fn affine(
+        &self,
+        n: usize,
+        d: usize,
+        state: &mut [f32],
+        logdet: &mut [f32],
+        bufs: [&mut [f32]; 4],
+    ) {
+        use std::arch::x86_64::*;
+        let [raw, t, s, b] = bufs;
+        let db = self.trans.len();
+        let m = n * db;
+        for (i, row) in state[..n * d].chunks_exact(d).enumerate() {
+            for (jb, &j) in self.trans.iter().enumerate() {
+                b[i * db + jb] = row[j];
+            }
+        }
+        let mut c = 0;
+        while c < m {
+            let mask: __mmask16 = ((1u32 << (m - c).min(16)) - 1) as __mmask16;
+            // SAFETY: the masked loads and stores touch only lanes c..min(c+16, m) of
+            // slices holding at least m values (asserted by the caller).
+            unsafe {
+                let sv = simd::clamped_tanh(
+                    _mm512_maskz_loadu_ps(mask, raw.as_ptr().add(c)),
+                    self.clamp,
+                );
+                let tv = _mm512_maskz_loadu_ps(mask, t.as_ptr().add(c));
+                let bv = _mm512_maskz_loadu_ps(mask, b.as_ptr().add(c));
+                let bn = if self.gen {
+                    _mm512_fmadd_ps(bv, simd::exp(sv), tv)
+                } else {
+                    _mm512_mul_ps(
+                        _mm512_sub_ps(bv, tv),
+                        simd::exp(_mm512_sub_ps(_mm512_setzero_ps(), sv)),
+                    )
+                };
+                _mm512_mask_storeu_ps(b.as_mut_ptr().add(c), mask, bn);
+                _mm512_mask_storeu_ps(s.as_mut_ptr().add(c), mask, sv);
+            }
+            c += 16;
+        }
+        let sign = if self.gen { 1.0 } else { -1.0 };
+        for (i, row) in state[..n * d].chunks_exact_mut(d).enumerate() {
+            let mut sum = 0.0f32;
+            for (jb, &j) in self.trans.iter().enumerate() {
+                row[j] = b[i * db + jb];
+                sum += s[i * db + jb];
+            }
+            logdet[i] += sign * sum;
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::flow::Flow;
+    use crate::spec::FlowSpec;
+    use crate::tape::Tape;
+
+    /// A SiLU flow of `dim` coordinates with every weight non-zero.
+    fn flow(dim: usize, hidden: usize) -> Flow<f32> {
+        let mut spec = FlowSpec::new(dim);
+        spec.hidden_width = hidden;
+        spec.n_layers = 6;
+        spec.activation = Activation::Silu;
+        let mut flow: Flow<f32> = Flow::new(spec, None, 3).unwrap();
+        for (i, p) in flow.params_mut().iter_mut().enumerate() {
+            *p += 0.05 * ((i * 7919 % 101) as f32 / 50.0 - 1.0);
+        }
+        flow
+    }
+
+    /// Generation and inversion of `rows` rows with the tape kept (the layer-by-layer
+    /// path) and without (the fused path): (x, log-det) of both, then (z, log-det).
+    fn both_paths(flow: &Flow<f32>, rows: usize, z: &[f32]) -> [(Vec<f32>, Vec<f32>); 4] {
+        let (d, n) = (flow.dim(), rows);
+        let run = |record: bool, gen: bool, input: &[f32]| {
+            let mut tape = Tape::new(flow, n, 1);
+            tape.record = record;
+            if gen {
+                tape.state[..n * d].copy_from_slice(input);
+                tape.generate(flow, n);
+                (tape.xbuf[..n * d].to_vec(), tape.logdet[..n].to_vec())
+            } else {
+                tape.xbuf[..n * d].copy_from_slice(input);
+                tape.invert(flow, n);
+                (tape.state[..n * d].to_vec(), tape.logdet[..n].to_vec())
+            }
+        };
+        let layered = run(true, true, z);
+        let fused = run(false, true, z);
+        let layered_inv = run(true, false, &layered.0);
+        let fused_inv = run(false, false, &fused.0);
+        [layered, fused, layered_inv, fused_inv]
+    }
+
+    fn assert_close(what: &str, got: &[f32], want: &[f32], tol: f32) {
+        for (k, (g, w)) in got.iter().zip(want).enumerate() {
+            assert!(
+                (g - w).abs() <= tol * (1.0 + w.abs()),
+                "{what}, value {k}: fused {g}, layer by layer {w}"
+            );
+        }
+    }
+
+    /// Flows with 1, 2, 7 and 8 transformed coordinates (odd splits included), widths
+    /// 16 to 64, and row counts that leave a partial last block: the fused passes agree
+    /// with the layer-by-layer ones, and invert what they generate.
+    #[test]
+    fn fused_passes_agree_with_the_layer_by_layer_path() {
+        if !std::is_x86_feature_detected!("avx512f") {
+            eprintln!("no AVX-512F on this CPU: the fused kernel is never used");
+            return;
+        }
+        for (dim, hidden, rows) in [
+            (2, 64, 37),
+            (2, 16, 6),
+            (14, 48, 50),
+            (16, 32, 13),
+            (3, 64, 9),
+        ] {
+            let f = flow(dim, hidden);
+            assert!(f
+                .layers
+                .iter()
+                .all(|c| applies::<f32>(c, Activation::Silu, rows)));
+            let z: Vec<f32> = (0..rows * dim)
+                .map(|i| 2.5 * ((i * 37 % 29) as f32 / 14.0 - 1.0))
+                .collect();
+            let [layered, fused, layered_inv, fused_inv] = both_paths(&f, rows, &z);
+            let case = format!("dim {dim}, width {hidden}, {rows} rows");
+            assert_close(&format!("{case}: x"), &fused.0, &layered.0, 1e-5);
+            assert_close(&format!("{case}: log-det"), &fused.1, &layered.1, 1e-5);
+            assert_close(
+                &format!("{case}: z of x"),
+                &fused_inv.0,
+                &layered_inv.0,
+                1e-5,
+            );
+            assert_close(
+                &format!("{case}: inverse log-det"),
+                &fused_inv.1,
+                &layered_inv.1,
+                1e-5,
+            );
+            assert_close(&format!("{case}: fused round trip"), &fused_inv.0, &z, 1e-5);
+            let moved = fused
+                .0
+                .iter()
+                .zip(&z)
+                .filter(|(x, z)| (*x - *z).abs() > 1e-3)
+                .count();
+            assert!(moved > rows, "{case}: the test flow is nearly the identity");
+        }
+    }
+
+    #[test]
+    fn wide_outputs_and_other_activations_keep_the_layer_by_layer_path() {
+        let f: Flow<f32> = Flow::new(FlowSpec::new(24), None, 3).unwrap();
+        assert!(!applies::<f32>(&f.layers[0], Activation::Silu, 64));
+        let f: Flow<f32> = Flow::new(FlowSpec::new(2), None, 3).unwrap();
+        assert!(!applies::<f32>(&f.layers[0], Activation::Tanh, 64));
+        assert!(!applies::<f32>(&f.layers[0], Activation::Silu, ROWS - 1));
+        let f: Flow<f64> = Flow::new(FlowSpec::new(2), None, 3).unwrap();
+        assert!(!applies::<f64>(&f.layers[0], Activation::Silu, 64));
+    }
+
+    /// A NaN in one row's input stays in that row: it reaches the row's output and
+    /// log-determinant and nothing else.
+    #[test]
+    fn a_nan_stays_in_its_row() {
+        if !std::is_x86_feature_detected!("avx512f") {
+            return;
+        }
+        let f = flow(2, 64);
+        let mut z = vec![0.5f32; 8 * 2];
+        z[3 * 2] = f32::NAN;
+        let [_, (x, ld), _, _] = both_paths(&f, 8, &z);
+        assert!(x[6..8].iter().all(|v| v.is_nan()) && ld[3].is_nan());
+        let others = (0..8).filter(|&r| r != 3);
+        assert!(others
+            .clone()
+            .all(|r| ld[r].is_finite() && x[2 * r..2 * r + 2].iter().all(|v| v.is_finite())));
+    }
+}
