@@ -198,9 +198,22 @@ fn thread_counts_agree_on_generation() {
         ws.generate(&flow, &z, &mut x, &mut ld).unwrap();
         outs.push(x);
     }
-    for o in &outs[1..] {
-        assert!(o.iter().zip(&outs[0]).all(|(a, b)| (a - b).abs() < 1e-5));
-    }
+    // Batch splitting runs the same kernels on every chunk: identical bits. GEMM
+    // splitting runs each layer as separate products (sampling with one thread per
+    // chunk uses the fused kernel), so it agrees to float32 rounding of the two.
+    assert_eq!(
+        outs[1], outs[0],
+        "1 and 2 threads of batch splitting differ"
+    );
+    let worst = outs[2]
+        .iter()
+        .zip(&outs[0])
+        .map(|(a, b)| (a - b).abs() / (1.0 + b.abs()))
+        .fold(0.0f32, f32::max);
+    assert!(
+        worst < 1e-5,
+        "GEMM splitting differs by {worst:e} (relative)"
+    );
 }
 
 #[test]
