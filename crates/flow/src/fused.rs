@@ -73,49 +73,88 @@ pub(crate) fn coupling<T: Real>(
     scratch: &mut Vec<T>,
 ) {
     assert!(applies::<T>(c, Activation::Silu, n), "fused kernel misused");
-    let [l1, l2, l3] = [c.dense[0], c.dense[1], c.dense[2]];
-    let (h, n_out) = (l1.n_out, l3.n_out);
     let [out, s_buf, b_buf] = bufs;
-    assert!(state.len() >= n * d && logdet.len() >= n && n_out == 2 * c.trans.len());
-    assert!(out.len() >= n * n_out && s_buf.len() >= n * n_out / 2 && b_buf.len() >= n * n_out / 2);
-    assert!(c.cond.iter().chain(&c.trans).all(|&j| j < d));
-    assert!(params.len() >= l3.b + n_out && params.len() >= l1.w.max(l2.w).max(l3.w));
-    // Output weights transposed (one row of h per output) for the dot-product form.
-    scratch.clear();
-    scratch.extend((0..n_out).flat_map(|j| (0..h).map(move |q| params[l3.w + q * n_out + j])));
+    let (n_out, db) = (c.dense[2].n_out, c.trans.len());
+    assert_eq!(d, c.cond.len() + db, "state width");
+    assert!(state.len() >= n * d && logdet.len() >= n && n_out == 2 * db);
+    assert!(out.len() >= n * n_out && s_buf.len() >= n * db && b_buf.len() >= n * db);
+    transpose_output_weights(params, c, scratch);
     #[cfg(target_arch = "x86_64")]
     {
         use crate::real::narrow::{as_f32, as_f32_mut};
         // SAFETY: `applies` checked that T is f32 and that the CPU has AVX-512F; the
-        // lengths read and written are asserted above.
+        // lengths read and written are asserted above and in `Kernel::new`.
         unsafe {
-            let p = as_f32(params);
-            let k = Kernel {
-                cond: &c.cond,
-                trans: &c.trans,
-                w1: &p[l1.w..l1.w + l1.n_in * h],
-                b1: &p[l1.b..l1.b + h],
-                w2: &p[l2.w..l2.w + h * h],
-                b2: &p[l2.b..l2.b + h],
-                w3: &p[l3.w..l3.w + h * n_out],
-                w3t: as_f32(scratch),
-                b3: &p[l3.b..l3.b + n_out],
-                n_out,
-                gen,
-                clamp: clamp as f32,
-            };
+            let k = Kernel::new(as_f32(params), c, as_f32(scratch), gen, clamp);
             let (st, out) = (as_f32_mut(state), as_f32_mut(out));
-            let (raw, t) = out[..n * n_out].split_at_mut(n * n_out / 2);
-            match h / 16 {
-                1 => k.conditioner::<1>(n, d, st, raw, t),
-                2 => k.conditioner::<2>(n, d, st, raw, t),
-                3 => k.conditioner::<3>(n, d, st, raw, t),
-                _ => k.conditioner::<4>(n, d, st, raw, t),
-            }
+            let (raw, t) = out[..n * n_out].split_at_mut(n * db);
+            k.dispatch(n, d, st, raw, t, None);
             let bufs = [raw, t, as_f32_mut(s_buf), as_f32_mut(b_buf)];
             k.affine(n, d, st, as_f32_mut(logdet), bufs);
         }
     }
+}
+
+/// The conditioner of coupling `c` on the first `n` rows of `state` for a pass that
+/// keeps its tape: writes the conditioning inputs to `a_in`, each hidden layer's
+/// activations and sigmoids to `hidden` and `sigmoid`, and the raw output rows (raw s,
+/// then t) to `out`, in the layouts the layer-by-layer backward pass reads.
+///
+/// Callers check `applies` first; a call that fails it is a bug in this crate.
+#[allow(clippy::too_many_arguments)]
+pub(crate) fn conditioner_taped<T: Real>(
+    params: &[T],
+    c: &Coupling,
+    n: usize,
+    d: usize,
+    state: &[T],
+    a_in: &mut [T],
+    hidden: [&mut [T]; 2],
+    sigmoid: [&mut [T]; 2],
+    out: &mut [T],
+    scratch: &mut Vec<T>,
+) {
+    assert!(applies::<T>(c, Activation::Silu, n), "fused kernel misused");
+    let (h, n_out, da) = (c.dense[0].n_out, c.dense[2].n_out, c.cond.len());
+    assert_eq!(d, da + c.trans.len(), "state width");
+    assert!(state.len() >= n * d && a_in.len() >= n * da && out.len() >= n * n_out);
+    assert!(hidden.iter().chain(&sigmoid).all(|b| b.len() >= n * h));
+    transpose_output_weights(params, c, scratch);
+    #[cfg(target_arch = "x86_64")]
+    {
+        use crate::real::narrow::{as_f32, as_f32_mut};
+        let [h1, h2] = hidden;
+        let [s1, s2] = sigmoid;
+        // SAFETY: as in `coupling`.
+        unsafe {
+            let k = Kernel::new(as_f32(params), c, as_f32(scratch), true, 1.0);
+            let mut taped = Taped {
+                a_in: as_f32_mut(a_in),
+                hidden: [as_f32_mut(h1), as_f32_mut(h2)],
+                sigmoid: [as_f32_mut(s1), as_f32_mut(s2)],
+                out: as_f32_mut(out),
+            };
+            k.dispatch(n, d, as_f32(state), &mut [], &mut [], Some(&mut taped));
+        }
+    }
+}
+
+/// Writes the output layer's weights transposed (one row of h per output) into
+/// `scratch`, for the dot-product form of the output layer.
+fn transpose_output_weights<T: Real>(params: &[T], c: &Coupling, scratch: &mut Vec<T>) {
+    let (l3, h) = (c.dense[2], c.dense[0].n_out);
+    let n_out = l3.n_out;
+    scratch.clear();
+    scratch.extend((0..n_out).flat_map(|j| (0..h).map(move |q| params[l3.w + q * n_out + j])));
+}
+
+/// Where a taped pass keeps the conditioner's intermediate values.
+#[cfg(target_arch = "x86_64")]
+struct Taped<'a> {
+    a_in: &'a mut [f32],
+    hidden: [&'a mut [f32]; 2],
+    sigmoid: [&'a mut [f32]; 2],
+    out: &'a mut [f32],
 }
 
 /// One coupling's conditioner weights (as f32 slices) and affine settings.
@@ -186,6 +225,21 @@ mod simd {
         _mm512_fmadd_ps(pr, _mm512_fnmadd_ps(den, r, one), pr)
     }
 
+    /// SiLU and the sigmoid it multiplied by, for passes whose backward needs both:
+    /// (p r, r) with r the Newton-refined reciprocal of 1 + e^-p.
+    #[target_feature(enable = "avx512f")]
+    #[inline]
+    pub(super) fn silu_and_sigmoid(p: __m512) -> (__m512, __m512) {
+        let one = _mm512_set1_ps(1.0);
+        let den = _mm512_add_ps(
+            one,
+            exp2(_mm512_mul_ps(p, _mm512_set1_ps(-std::f32::consts::LOG2_E))),
+        );
+        let r = _mm512_rcp14_ps(den);
+        let r = _mm512_fmadd_ps(r, _mm512_fnmadd_ps(den, r, one), r);
+        (_mm512_mul_ps(p, r), r)
+    }
+
     /// c tanh(x / c) as c (1 - 2 / (1 + e^{2x/c})), the form of `tanh_fast`.
     #[target_feature(enable = "avx512f")]
     #[inline]
@@ -196,11 +250,92 @@ mod simd {
     }
 }
 
+/// SiLU of 16 pre-activations; a taped pass also keeps the activations and sigmoids of
+/// hidden layer `layer` at offset `at`.
+///
+/// # Safety
+/// AVX-512F; `at + 16` within the taped buffers.
 #[cfg(target_arch = "x86_64")]
-impl Kernel<'_> {
+#[target_feature(enable = "avx512f")]
+#[inline]
+unsafe fn activate(
+    p: std::arch::x86_64::__m512,
+    taped: &mut Option<&mut Taped>,
+    layer: usize,
+    at: usize,
+) -> std::arch::x86_64::__m512 {
+    use std::arch::x86_64::*;
+    match taped.as_deref_mut() {
+        None => simd::silu(p),
+        Some(tp) => {
+            let (y, sig) = simd::silu_and_sigmoid(p);
+            // SAFETY: the caller keeps `at + 16` within the buffers.
+            unsafe {
+                _mm512_storeu_ps(tp.hidden[layer].as_mut_ptr().add(at), y);
+                _mm512_storeu_ps(tp.sigmoid[layer].as_mut_ptr().add(at), sig);
+            }
+            y
+        }
+    }
+}
+
+#[cfg(target_arch = "x86_64")]
+impl<'a> Kernel<'a> {
+    /// The kernel of coupling `c` over f32 parameters, with the transposed output
+    /// weights `w3t`; panics (a bug in this crate) if the parameters are too short.
+    fn new(p: &'a [f32], c: &'a Coupling, w3t: &'a [f32], gen: bool, clamp: f64) -> Self {
+        let [l1, l2, l3] = [c.dense[0], c.dense[1], c.dense[2]];
+        let (h, n_out) = (l1.n_out, l3.n_out);
+        assert!(c
+            .cond
+            .iter()
+            .chain(&c.trans)
+            .all(|&j| j < c.cond.len() + c.trans.len()));
+        assert!(w3t.len() >= n_out * h);
+        Kernel {
+            cond: &c.cond,
+            trans: &c.trans,
+            w1: &p[l1.w..l1.w + l1.n_in * h],
+            b1: &p[l1.b..l1.b + h],
+            w2: &p[l2.w..l2.w + h * h],
+            b2: &p[l2.b..l2.b + h],
+            w3: &p[l3.w..l3.w + h * n_out],
+            w3t,
+            b3: &p[l3.b..l3.b + n_out],
+            n_out,
+            gen,
+            clamp: clamp as f32,
+        }
+    }
+
+    /// `conditioner` for this kernel's hidden width.
+    ///
+    /// # Safety
+    /// AVX-512F, and the slice lengths the callers assert.
+    unsafe fn dispatch(
+        &self,
+        n: usize,
+        d: usize,
+        state: &[f32],
+        raw: &mut [f32],
+        t: &mut [f32],
+        taped: Option<&mut Taped>,
+    ) {
+        // SAFETY: forwarded from the caller.
+        unsafe {
+            match self.w1.len() / self.cond.len() / 16 {
+                1 => self.conditioner::<1>(n, d, state, raw, t, taped),
+                2 => self.conditioner::<2>(n, d, state, raw, t, taped),
+                3 => self.conditioner::<3>(n, d, state, raw, t, taped),
+                _ => self.conditioner::<4>(n, d, state, raw, t, taped),
+            }
+        }
+    }
+
     /// The conditioner of all `n` rows (n >= ROWS), in blocks of ROWS, writing raw s to
-    /// `raw` and t to `t` (n x transformed each). The last block overlaps the one before
-    /// instead of running a scalar tail (rows are independent and only read).
+    /// `raw` and t to `t` (n x transformed each), or, for a taped pass, everything to
+    /// `taped`. The last block overlaps the one before instead of running a scalar tail
+    /// (rows are independent and only read; overlapping rows get the same values again).
     #[target_feature(enable = "avx512f")]
     fn conditioner<const NV: usize>(
         &self,
@@ -209,16 +344,16 @@ impl Kernel<'_> {
         state: &[f32],
         raw: &mut [f32],
         t: &mut [f32],
+        mut taped: Option<&mut Taped>,
     ) {
         use std::arch::x86_64::*;
-        let h = 16 * NV;
-        let db = self.trans.len();
+        let (h, da, db, n_out) = (16 * NV, self.cond.len(), self.trans.len(), self.n_out);
         let mut hid = [0.0f32; ROWS * 64];
         let mut i = 0;
         while i < n {
             let i0 = if i + ROWS <= n { i } else { n - ROWS };
             // SAFETY (whole block): every offset stays inside the slices, whose lengths
-            // the caller asserted (rows i0..i0+ROWS <= n, columns < d, h, n_out).
+            // the callers asserted (rows i0..i0+ROWS <= n, columns < d, h, n_out).
             unsafe {
                 // First hidden layer, row by row, into `hid` (its entries are broadcast
                 // one at a time by the second layer).
@@ -226,7 +361,11 @@ impl Kernel<'_> {
                     let row = state.as_ptr().add((i0 + r) * d);
                     let mut acc = [_mm512_setzero_ps(); NV];
                     for (p, &j) in self.cond.iter().enumerate() {
-                        let a = _mm512_set1_ps(*row.add(j));
+                        let x = *row.add(j);
+                        if let Some(tp) = taped.as_deref_mut() {
+                            tp.a_in[(i0 + r) * da + p] = x;
+                        }
+                        let a = _mm512_set1_ps(x);
                         for (v, accv) in acc.iter_mut().enumerate() {
                             let w = _mm512_loadu_ps(self.w1.as_ptr().add(p * h + 16 * v));
                             *accv = _mm512_fmadd_ps(a, w, *accv);
@@ -234,7 +373,8 @@ impl Kernel<'_> {
                     }
                     for (v, &accv) in acc.iter().enumerate() {
                         let b = _mm512_loadu_ps(self.b1.as_ptr().add(16 * v));
-                        let y = simd::silu(_mm512_add_ps(accv, b));
+                        let y =
+                            activate(_mm512_add_ps(accv, b), &mut taped, 0, (i0 + r) * h + 16 * v);
                         _mm512_storeu_ps(hid.as_mut_ptr().add(r * h + 16 * v), y);
                     }
                 }
@@ -252,45 +392,36 @@ impl Kernel<'_> {
                         }
                     }
                 }
-                for accr in acc.iter_mut() {
+                for (r, accr) in acc.iter_mut().enumerate() {
                     for (v, x) in accr.iter_mut().enumerate() {
                         let b = _mm512_loadu_ps(self.b2.as_ptr().add(16 * v));
-                        *x = simd::silu(_mm512_add_ps(*x, b));
+                        *x = activate(_mm512_add_ps(*x, b), &mut taped, 1, (i0 + r) * h + 16 * v);
                     }
                 }
-                let o = i0 * db;
-                self.output_layer::<NV>(
-                    &acc,
-                    &mut hid,
-                    &mut raw[o..o + ROWS * db],
-                    &mut t[o..o + ROWS * db],
-                );
+                let mut put = |r: usize, j: usize, v: f32| match taped.as_deref_mut() {
+                    Some(tp) => tp.out[(i0 + r) * n_out + j] = v,
+                    None if j < db => raw[(i0 + r) * db + j] = v,
+                    None => t[(i0 + r) * db + j - db] = v,
+                };
+                self.output_layer::<NV>(&acc, &mut hid, &mut put);
             }
             i = i0 + ROWS;
         }
     }
 
-    /// The output layer of one block (raw s and t of its ROWS rows) from the second
-    /// hidden layer in registers: dot products for up to 4 outputs, otherwise one masked
-    /// row of outputs per row from `hid`.
+    /// The output layer of one block (output j of block row r handed to `put`) from the
+    /// second hidden layer in registers: dot products for up to 4 outputs, otherwise one
+    /// masked row of outputs per row from `hid`.
     #[target_feature(enable = "avx512f")]
     #[inline]
     fn output_layer<const NV: usize>(
         &self,
         acc: &[[std::arch::x86_64::__m512; NV]; ROWS],
         hid: &mut [f32; ROWS * 64],
-        raw: &mut [f32],
-        t: &mut [f32],
+        put: &mut impl FnMut(usize, usize, f32),
     ) {
         use std::arch::x86_64::*;
-        let (h, n_out, db) = (16 * NV, self.n_out, self.trans.len());
-        let mut put = |r: usize, j: usize, v: f32| {
-            if j < db {
-                raw[r * db + j] = v;
-            } else {
-                t[r * db + j - db] = v;
-            }
-        };
+        let (h, n_out) = (16 * NV, self.n_out);
         // SAFETY: w3t holds n_out x h values, w3 h x n_out and b3 n_out (asserted by the
         // caller); hid is a fixed array indexed below ROWS x h.
         unsafe {
@@ -408,28 +539,58 @@ mod tests {
         flow
     }
 
-    /// Generation and inversion of `rows` rows with the tape kept (the layer-by-layer
-    /// path) and without (the fused path): (x, log-det) of both, then (z, log-det).
-    fn both_paths(flow: &Flow<f32>, rows: usize, z: &[f32]) -> [(Vec<f32>, Vec<f32>); 4] {
-        let (d, n) = (flow.dim(), rows);
-        let run = |record: bool, gen: bool, input: &[f32]| {
-            let mut tape = Tape::new(flow, n, 1);
-            tape.record = record;
-            if gen {
-                tape.state[..n * d].copy_from_slice(input);
-                tape.generate(flow, n);
-                (tape.xbuf[..n * d].to_vec(), tape.logdet[..n].to_vec())
-            } else {
-                tape.xbuf[..n * d].copy_from_slice(input);
-                tape.invert(flow, n);
-                (tape.state[..n * d].to_vec(), tape.logdet[..n].to_vec())
-            }
-        };
-        let layered = run(true, true, z);
-        let fused = run(false, true, z);
-        let layered_inv = run(true, false, &layered.0);
-        let fused_inv = run(false, false, &fused.0);
+    /// One generation (`gen`) or inversion of `rows` rows by a fresh tape: its output
+    /// and per-row log-determinant.
+    fn pass(
+        flow: &Flow<f32>,
+        gen: bool,
+        record: bool,
+        fused: bool,
+        input: &[f32],
+    ) -> (Vec<f32>, Vec<f32>) {
+        let d = flow.dim();
+        let n = input.len() / d;
+        let mut tape = Tape::new(flow, n, 1);
+        tape.record = record;
+        tape.fused = fused;
+        if gen {
+            tape.state[..n * d].copy_from_slice(input);
+            tape.generate(flow, n);
+            (tape.xbuf[..n * d].to_vec(), tape.logdet[..n].to_vec())
+        } else {
+            tape.xbuf[..n * d].copy_from_slice(input);
+            tape.invert(flow, n);
+            (tape.state[..n * d].to_vec(), tape.logdet[..n].to_vec())
+        }
+    }
+
+    /// Generation, then inversion of the result, layer by layer and fused (with or
+    /// without the tape kept): [layered, fused, layered inverse, fused inverse].
+    fn both_paths(flow: &Flow<f32>, record: bool, z: &[f32]) -> [(Vec<f32>, Vec<f32>); 4] {
+        let layered = pass(flow, true, record, false, z);
+        let fused = pass(flow, true, record, true, z);
+        let layered_inv = pass(flow, false, record, false, &layered.0);
+        let fused_inv = pass(flow, false, record, true, &fused.0);
         [layered, fused, layered_inv, fused_inv]
+    }
+
+    /// The gradient of the mean negative log-likelihood of the rows of `x` with respect
+    /// to the parameters and to `x`, through a taped inversion and its backward pass.
+    fn nll_gradient(flow: &Flow<f32>, fused: bool, x: &[f32]) -> (Vec<f32>, Vec<f32>) {
+        let d = flow.dim();
+        let n = x.len() / d;
+        let mut tape = Tape::new(flow, n, 1);
+        tape.fused = fused;
+        tape.reset_written();
+        tape.xbuf[..n * d].copy_from_slice(x);
+        tape.invert(flow, n);
+        let scale = 1.0 / n as f32;
+        for (g, &z) in tape.grad[..n * d].iter_mut().zip(&tape.state[..n * d]) {
+            *g = z * scale;
+        }
+        let mut pgrad = vec![0.0f32; flow.n_params()];
+        tape.invert_backward(flow, n, scale, &mut pgrad, true);
+        (pgrad, tape.gxbuf[..n * d].to_vec())
     }
 
     fn assert_close(what: &str, got: &[f32], want: &[f32], tol: f32) {
@@ -441,54 +602,92 @@ mod tests {
         }
     }
 
+    /// Points of a flow's data space for the tests.
+    fn points(rows: usize, dim: usize) -> Vec<f32> {
+        (0..rows * dim)
+            .map(|i| 2.5 * ((i * 37 % 29) as f32 / 14.0 - 1.0))
+            .collect()
+    }
+
+    const CASES: [(usize, usize, usize); 5] = [
+        (2, 64, 37),
+        (2, 16, 6),
+        (14, 48, 50),
+        (16, 32, 13),
+        (3, 64, 9),
+    ];
+
     /// Flows with 1, 2, 7 and 8 transformed coordinates (odd splits included), widths
-    /// 16 to 64, and row counts that leave a partial last block: the fused passes agree
-    /// with the layer-by-layer ones, and invert what they generate.
+    /// 16 to 64, and row counts that leave a partial last block: the fused passes, with
+    /// and without a tape, agree with the layer-by-layer ones and invert what they
+    /// generate.
     #[test]
     fn fused_passes_agree_with_the_layer_by_layer_path() {
         if !std::is_x86_feature_detected!("avx512f") {
             eprintln!("no AVX-512F on this CPU: the fused kernel is never used");
             return;
         }
-        for (dim, hidden, rows) in [
-            (2, 64, 37),
-            (2, 16, 6),
-            (14, 48, 50),
-            (16, 32, 13),
-            (3, 64, 9),
-        ] {
+        for (dim, hidden, rows) in CASES {
             let f = flow(dim, hidden);
             assert!(f
                 .layers
                 .iter()
                 .all(|c| applies::<f32>(c, Activation::Silu, rows)));
-            let z: Vec<f32> = (0..rows * dim)
-                .map(|i| 2.5 * ((i * 37 % 29) as f32 / 14.0 - 1.0))
-                .collect();
-            let [layered, fused, layered_inv, fused_inv] = both_paths(&f, rows, &z);
-            let case = format!("dim {dim}, width {hidden}, {rows} rows");
-            assert_close(&format!("{case}: x"), &fused.0, &layered.0, 1e-5);
-            assert_close(&format!("{case}: log-det"), &fused.1, &layered.1, 1e-5);
-            assert_close(
-                &format!("{case}: z of x"),
-                &fused_inv.0,
-                &layered_inv.0,
-                1e-5,
-            );
-            assert_close(
-                &format!("{case}: inverse log-det"),
-                &fused_inv.1,
-                &layered_inv.1,
-                1e-5,
-            );
-            assert_close(&format!("{case}: fused round trip"), &fused_inv.0, &z, 1e-5);
-            let moved = fused
-                .0
-                .iter()
-                .zip(&z)
-                .filter(|(x, z)| (*x - *z).abs() > 1e-3)
-                .count();
-            assert!(moved > rows, "{case}: the test flow is nearly the identity");
+            let z = points(rows, dim);
+            for record in [false, true] {
+                let [layered, fused, layered_inv, fused_inv] = both_paths(&f, record, &z);
+                let case = format!("dim {dim}, width {hidden}, {rows} rows, taped {record}");
+                assert_close(&format!("{case}: x"), &fused.0, &layered.0, 1e-5);
+                assert_close(&format!("{case}: log-det"), &fused.1, &layered.1, 1e-5);
+                assert_close(
+                    &format!("{case}: z of x"),
+                    &fused_inv.0,
+                    &layered_inv.0,
+                    1e-5,
+                );
+                assert_close(
+                    &format!("{case}: inverse log-det"),
+                    &fused_inv.1,
+                    &layered_inv.1,
+                    1e-5,
+                );
+                assert_close(&format!("{case}: fused round trip"), &fused_inv.0, &z, 1e-5);
+                let moved = fused
+                    .0
+                    .iter()
+                    .zip(&z)
+                    .filter(|(x, z)| (*x - *z).abs() > 1e-3)
+                    .count();
+                assert!(moved > rows, "{case}: the test flow is nearly the identity");
+            }
+        }
+    }
+
+    /// The backward pass reads what the fused taped forward kept: the likelihood
+    /// gradients (parameters and inputs) match the layer-by-layer ones to within 1e-4 of
+    /// their largest magnitude.
+    #[test]
+    fn gradients_through_the_fused_tape_agree() {
+        if !std::is_x86_feature_detected!("avx512f") {
+            return;
+        }
+        for (dim, hidden, rows) in CASES {
+            let f = flow(dim, hidden);
+            let x = points(rows, dim);
+            let (pg_l, xg_l) = nll_gradient(&f, false, &x);
+            let (pg_f, xg_f) = nll_gradient(&f, true, &x);
+            for (what, got, want) in [("parameters", &pg_f, &pg_l), ("inputs", &xg_f, &xg_l)] {
+                let scale = want.iter().fold(0.0f32, |m, v| m.max(v.abs()));
+                let worst = got
+                    .iter()
+                    .zip(want)
+                    .fold(0.0f32, |m, (a, b)| m.max((a - b).abs()));
+                assert!(scale > 1e-3, "dim {dim}: vanishing {what} gradient");
+                assert!(
+                    worst <= 1e-4 * scale,
+                    "dim {dim}, width {hidden}: {what} gradient differs by {worst} (largest {scale})"
+                );
+            }
         }
     }
 
@@ -571,7 +770,7 @@ mod tests {
         let f = flow(2, 64);
         let mut z = vec![0.5f32; 8 * 2];
         z[3 * 2] = f32::NAN;
-        let [_, (x, ld), _, _] = both_paths(&f, 8, &z);
+        let [_, (x, ld), _, _] = both_paths(&f, false, &z);
         assert!(x[6..8].iter().all(|v| v.is_nan()) && ld[3].is_nan());
         let others = (0..8).filter(|&r| r != 3);
         assert!(others

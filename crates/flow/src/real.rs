@@ -232,6 +232,13 @@ pub(crate) fn matmul_s<T: Real>(
         }
         return;
     }
+    if threads == 1 && !thin && a_t && !b_t && narrow::applies::<T>(m, n, 0) {
+        // SAFETY: as above.
+        let (a32, b32, c32) =
+            unsafe { (narrow::as_f32(a), narrow::as_f32(b), narrow::as_f32_mut(c)) };
+        unsafe { narrow::product_at(m, n, k, a32, b32, c32, accumulate) };
+        return;
+    }
     if threads > 1 || !thin || (a_t && b_t) {
         return matmul(m, n, k, a, a_t, b, b_t, c, accumulate, threads);
     }
@@ -283,7 +290,9 @@ pub(crate) mod narrow {
     use super::Real;
     use std::any::TypeId;
 
-    /// Whether the kernel handles this product on this CPU for this scalar type.
+    /// Whether the kernels handle this product on this CPU for this scalar type (`k` is
+    /// the inner dimension of `product`; `product_at`, which streams its inner
+    /// dimension, is asked with k = 0).
     pub(super) fn applies<T: Real>(m: usize, n: usize, k: usize) -> bool {
         #[cfg(target_arch = "x86_64")]
         {
@@ -353,6 +362,97 @@ pub(crate) mod narrow {
         _: &mut [f32],
     ) {
         unreachable!("applies() is false off x86_64")
+    }
+
+    /// c (m x n) = a^T b, or c += a^T b when `accumulate`, with a stored k x m and b
+    /// k x n (row-major): the weight gradient of a dense layer, input^T g. Six rows of c
+    /// (six columns of a, adjacent in each row of a) stay in registers while the rows of
+    /// b stream past; a last block that would run past m overlaps the one before and
+    /// writes only its new rows.
+    ///
+    /// # Safety
+    /// The CPU must support AVX-512F and `applies` must hold for (m, n, 0).
+    #[cfg(target_arch = "x86_64")]
+    pub(super) unsafe fn product_at(
+        m: usize,
+        n: usize,
+        k: usize,
+        a: &[f32],
+        b: &[f32],
+        c: &mut [f32],
+        accumulate: bool,
+    ) {
+        assert!(a.len() >= m * k && b.len() >= k * n && c.len() >= m * n);
+        unsafe {
+            match n / 16 {
+                1 => rows_at::<1>(m, k, a, b, c, accumulate),
+                2 => rows_at::<2>(m, k, a, b, c, accumulate),
+                3 => rows_at::<3>(m, k, a, b, c, accumulate),
+                _ => rows_at::<4>(m, k, a, b, c, accumulate),
+            }
+        }
+    }
+
+    #[cfg(not(target_arch = "x86_64"))]
+    pub(super) unsafe fn product_at(
+        _: usize,
+        _: usize,
+        _: usize,
+        _: &[f32],
+        _: &[f32],
+        _: &mut [f32],
+        _: bool,
+    ) {
+        unreachable!("applies() is false off x86_64")
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx512f")]
+    unsafe fn rows_at<const NV: usize>(
+        m: usize,
+        k: usize,
+        a: &[f32],
+        b: &[f32],
+        c: &mut [f32],
+        accumulate: bool,
+    ) {
+        use std::arch::x86_64::*;
+        const R: usize = 6;
+        let n = 16 * NV;
+        let (ap, bp, cp) = (a.as_ptr(), b.as_ptr(), c.as_mut_ptr());
+        let mut i = 0;
+        while i < m {
+            let i0 = if i + R <= m { i } else { m - R };
+            // SAFETY (whole block): offsets stay below m*k, k*n and m*n (asserted by
+            // the caller); rows i0..i0+R of c exist since m >= R.
+            unsafe {
+                let mut acc = [[_mm512_setzero_ps(); NV]; R];
+                for p in 0..k {
+                    let mut w = [_mm512_setzero_ps(); NV];
+                    for (v, wv) in w.iter_mut().enumerate() {
+                        *wv = _mm512_loadu_ps(bp.add(p * n + 16 * v));
+                    }
+                    for (r, accr) in acc.iter_mut().enumerate() {
+                        let s = _mm512_set1_ps(*ap.add(p * m + i0 + r));
+                        for v in 0..NV {
+                            accr[v] = _mm512_fmadd_ps(s, w[v], accr[v]);
+                        }
+                    }
+                }
+                for (r, accr) in acc.iter().enumerate().skip(i - i0) {
+                    for (v, &x) in accr.iter().enumerate() {
+                        let dst = cp.add((i0 + r) * n + 16 * v);
+                        let x = if accumulate {
+                            _mm512_add_ps(_mm512_loadu_ps(dst), x)
+                        } else {
+                            x
+                        };
+                        _mm512_storeu_ps(dst, x);
+                    }
+                }
+            }
+            i = i0 + R;
+        }
     }
 
     #[cfg(target_arch = "x86_64")]
@@ -703,6 +803,43 @@ mod tests {
                     .map(|(x, y)| (x - y).abs())
                     .fold(0.0, f32::max);
                 assert!(err < 1e-3, "{m}x{n}x{k} b_t={b_t}: {err}");
+            }
+        }
+    }
+
+    #[test]
+    fn transposed_narrow_kernel_agrees_with_the_general_product() {
+        let mut scratch = Vec::new();
+        for &(m, n, k) in &[(64, 64, 1024), (13, 48, 70), (6, 16, 9), (40, 32, 300)] {
+            for accumulate in [false, true] {
+                let a: Vec<f32> = (0..m * k)
+                    .map(|i| ((i * 7) % 19) as f32 * 0.1 - 0.9)
+                    .collect();
+                let b: Vec<f32> = (0..k * n)
+                    .map(|i| ((i * 5) % 23) as f32 * 0.05 - 0.5)
+                    .collect();
+                let start: Vec<f32> = (0..m * n).map(|i| (i % 11) as f32 - 5.0).collect();
+                let (mut want, mut got) = (start.clone(), start.clone());
+                matmul(m, n, k, &a, true, &b, false, &mut want, accumulate, 1);
+                matmul_s(
+                    m,
+                    n,
+                    k,
+                    &a,
+                    true,
+                    &b,
+                    false,
+                    &mut got,
+                    accumulate,
+                    1,
+                    &mut scratch,
+                );
+                let err = want
+                    .iter()
+                    .zip(&got)
+                    .map(|(x, y)| (x - y).abs() / (1.0 + x.abs()))
+                    .fold(0.0, f32::max);
+                assert!(err < 1e-5, "{m}x{n}x{k} accumulate={accumulate}: {err}");
             }
         }
     }

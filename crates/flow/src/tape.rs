@@ -68,6 +68,9 @@ pub(crate) struct Tape<T> {
     pub record: bool,
     /// Small transposed copies for thin matrix products.
     scratch: Vec<T>,
+    /// Whether passes may use the fused kernel where it applies (tests turn it off to
+    /// compare with the layer-by-layer path).
+    pub fused: bool,
     /// The error a closure met on this chunk, checked in chunk order afterwards.
     pub err: Option<crate::FlowError>,
     /// Rows this chunk processed since the workspace last reset it.
@@ -128,6 +131,7 @@ impl<T: Real> Tape<T> {
             written: vec![false; flow.layers.iter().map(|c| c.dense.len()).sum()],
             record: true,
             scratch: Vec::new(),
+            fused: true,
             err: None,
             rows_done: 0,
         }
@@ -300,7 +304,9 @@ impl<T: Real> Tape<T> {
         let lt = &mut self.layers[if self.record { k } else { 0 }];
         let record = self.record;
         let clamp = T::of(flow.spec.clamp);
-        if !record && self.gemm_threads == 1 && fused::applies::<T>(c, flow.spec.activation, n) {
+        let fused =
+            self.fused && self.gemm_threads == 1 && fused::applies::<T>(c, flow.spec.activation, n);
+        if fused && !record {
             fused::coupling(
                 &flow.params,
                 c,
@@ -315,17 +321,34 @@ impl<T: Real> Tape<T> {
             );
             return;
         }
-        gather_rows(n, d, &c.cond, &self.state, &mut lt.a_in);
-        mlp_forward(
-            &flow.params,
-            c,
-            flow.spec.activation,
-            n,
-            lt,
-            self.gemm_threads,
-            &mut self.scratch,
-            record,
-        );
+        if fused {
+            let (h1, h2) = lt.hidden.split_at_mut(1);
+            let (s1, s2) = lt.aux.split_at_mut(1);
+            fused::conditioner_taped(
+                &flow.params,
+                c,
+                n,
+                d,
+                &self.state,
+                &mut lt.a_in,
+                [&mut h1[0], &mut h2[0]],
+                [&mut s1[0], &mut s2[0]],
+                &mut lt.out,
+                &mut self.scratch,
+            );
+        } else {
+            gather_rows(n, d, &c.cond, &self.state, &mut lt.a_in);
+            mlp_forward(
+                &flow.params,
+                c,
+                flow.spec.activation,
+                n,
+                lt,
+                self.gemm_threads,
+                &mut self.scratch,
+                record,
+            );
+        }
         coupling_elementwise(
             n,
             d,
