@@ -363,7 +363,37 @@ fn slurm_settings_are_validated_with_the_key_and_line() {
         "[explore.slurm]\ntime_limit = \"30\"\n\n[dedup]\nkind = \"quench\"\n",
     );
     let file = env.write("good.toml", &good);
-    env.tarn(&["check", file.to_str().unwrap()]).code(0);
+    let r = env.tarn(&["check", file.to_str().unwrap()]);
+    r.code(0);
+    // The plan shows what each stage's jobs ask for: the stage's table over the
+    // executor's, the day-hour time limit in minutes, the campaign's arguments last.
+    assert!(
+        r.stdout.contains("each task is one Slurm job asking for:"),
+        "{}",
+        r.stdout
+    );
+    let line = |stage: &str| {
+        r.stdout
+            .lines()
+            .find(|l| l.trim_start().starts_with(stage) && l.contains("--time="))
+            .unwrap_or_else(|| panic!("no resources line for {stage} in\n{}", r.stdout))
+            .to_string()
+    };
+    let common = "--cpus-per-task=2 --partition=debug --mem=4G --qos=normal";
+    assert!(
+        line("walk").ends_with(&format!("--time=30 {common}")),
+        "{}",
+        r.stdout
+    );
+    assert!(
+        line("dedup").ends_with(&format!("--time=1470 {common}")),
+        "{}",
+        r.stdout
+    );
+    let plan = env.json(&["check", file.to_str().unwrap()]);
+    let walk = &plan["commands"][0];
+    assert_eq!(walk["stage"], "walk");
+    assert_eq!(walk["sbatch_resources"][0], "--time=30");
 }
 
 // ---------------------------------------------------------------------------------

@@ -524,7 +524,15 @@ fn cmd_status(state: &Path, name: &str, json: bool) -> Result<u8, Failure> {
             println!("  running: {}", s.tasks_running.join(", "));
         }
         let age = crate::store::now_unix() - s.updated_unix;
-        println!("  last update {age:.0} s ago");
+        if age >= 0.0 {
+            println!("  last update {age:.0} s ago");
+        } else {
+            // The wall clock moved back since the runner wrote its time stamp.
+            println!(
+                "  last update just now (this machine's clock reads {:.0} s before the update's time stamp)",
+                -age
+            );
+        }
     }
     Ok(EXIT_OK)
 }
@@ -539,7 +547,9 @@ fn cmd_check(file: &Path, json: bool) -> Result<u8, Failure> {
             let (p, a) = engine::resolve_command(&s.worker, &exe, &c.base_dir);
             let mut argv = vec![p.display().to_string()];
             argv.extend(a);
-            serde_json::json!({"stage": s.name, "role": s.role, "walkers": s.walkers, "argv": argv})
+            let slurm = engine::stage_resources(&c, s)
+                .map(|r| crate::executor::slurm::resource_args(&r));
+            serde_json::json!({"stage": s.name, "role": s.role, "walkers": s.walkers, "argv": argv, "sbatch_resources": slurm})
         })
         .collect();
     if json {
@@ -590,6 +600,22 @@ fn cmd_check(file: &Path, json: bool) -> Result<u8, Failure> {
         "  executor    {}: {} tasks at a time, timeout {:.0} s, {} attempt(s) per task, {} thread(s) per task",
         e.kind, e.max_parallel, e.timeout.as_secs_f64(), e.retry.attempts, e.threads_per_task
     );
+    if e.slurm.is_some() {
+        println!("  each task is one Slurm job asking for:");
+        for cmd in &commands {
+            let args: Vec<&str> = cmd["sbatch_resources"]
+                .as_array()
+                .into_iter()
+                .flatten()
+                .filter_map(|v| v.as_str())
+                .collect();
+            println!(
+                "    {:<14} {}",
+                cmd["stage"].as_str().unwrap_or(""),
+                args.join(" ")
+            );
+        }
+    }
     println!("  commands it will run (never through a shell):");
     for cmd in &commands {
         let argv: Vec<String> = cmd["argv"]

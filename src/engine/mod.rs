@@ -23,7 +23,7 @@ use tracing::Instrument;
 use crate::executor::slurm::{job_name, BatchRequest, Existing};
 use crate::executor::{Executor, Exit, Job, OnStart, Outcome, Started};
 use crate::protocol::{npy, read_result, Role, TaskFile, PROTOCOL_VERSION};
-use crate::spec::{Campaign, KeepDirs, SpecError, Stage, Worker};
+use crate::spec::{Campaign, KeepDirs, SlurmResources, SpecError, Stage, Worker};
 use crate::store::{
     jobs::{JobPhase, JobRecord},
     keys, now_unix, Attempt, Batch, CampaignVersion, Meta, RoundRecord, StageTotals, StopDecision,
@@ -949,24 +949,10 @@ fn make_job(ctx: &Ctx, stage: &Stage, task: &TaskRef, dir: &Path, number: u32) -
         env.push((k.to_string(), threads.clone()));
     }
     let timeout = stage.timeout.unwrap_or(ctx.campaign.executor.timeout);
-    let batch = ctx.campaign.executor.slurm.as_ref().map(|s| {
-        let base = &s.defaults;
-        let mut resources = stage
-            .slurm
-            .as_ref()
-            .map_or_else(|| base.clone(), |r| r.over(base));
-        // Slurm counts whole minutes: the task's timeout, rounded up.
-        resources.time_limit_minutes = resources
-            .time_limit_minutes
-            .or(Some(timeout.as_secs().div_ceil(60).max(1)));
-        resources.cpus = resources
-            .cpus
-            .or(Some(ctx.campaign.executor.threads_per_task));
-        BatchRequest {
-            name: job_name(&ctx.campaign.name, &task.id, number, &abs_dir),
-            resources,
-            existing: None,
-        }
+    let batch = stage_resources(&ctx.campaign, stage).map(|resources| BatchRequest {
+        name: job_name(&ctx.campaign.name, &task.id, number, &abs_dir),
+        resources,
+        existing: None,
     });
     Job {
         id: task.id.clone(),
@@ -986,6 +972,25 @@ fn make_job(ctx: &Ctx, stage: &Stage, task: &TaskRef, dir: &Path, number: u32) -
 /// `tarn work KIND`. For a command, a program or argument that names an existing file
 /// relative to the campaign file's directory is passed as an absolute path (workers run
 /// in their task directory); everything else is passed unchanged, never through a shell.
+/// What each Slurm job of `stage` asks for (None unless the executor is Slurm): the
+/// stage's `slurm` table over `[executor.slurm]`, with the time limit falling back to
+/// the task's timeout (rounded up to whole minutes, Slurm's unit) and the CPUs to
+/// `executor.threads_per_task`.
+pub fn stage_resources(campaign: &Campaign, stage: &Stage) -> Option<SlurmResources> {
+    let s = campaign.executor.slurm.as_ref()?;
+    let base = &s.defaults;
+    let mut resources = stage
+        .slurm
+        .as_ref()
+        .map_or_else(|| base.clone(), |r| r.over(base));
+    let timeout = stage.timeout.unwrap_or(campaign.executor.timeout);
+    resources.time_limit_minutes = resources
+        .time_limit_minutes
+        .or(Some(timeout.as_secs().div_ceil(60).max(1)));
+    resources.cpus = resources.cpus.or(Some(campaign.executor.threads_per_task));
+    Some(resources)
+}
+
 pub fn resolve_command(worker: &Worker, exe: &Path, base: &Path) -> (PathBuf, Vec<String>) {
     match worker {
         Worker::Builtin(kind) => (exe.to_path_buf(), vec!["work".into(), kind.clone()]),

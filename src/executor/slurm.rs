@@ -455,6 +455,15 @@ pub fn sbatch_args(job: &Job, req: &BatchRequest, script: &Path) -> Vec<String> 
         // preemption, not Slurm's requeue (a campaign's sbatch_args may say --requeue).
         "--no-requeue".into(),
     ];
+    a.extend(resource_args(r));
+    a.push(script.display().to_string());
+    a
+}
+
+/// The `sbatch` arguments that carry a job's resources, in the order tarn passes them
+/// (the campaign's own `sbatch_args` last, so that they override).
+pub fn resource_args(r: &SlurmResources) -> Vec<String> {
+    let mut a = Vec::new();
     if let Some(m) = r.time_limit_minutes {
         a.push(format!("--time={m}"));
     }
@@ -468,7 +477,6 @@ pub fn sbatch_args(job: &Job, req: &BatchRequest, script: &Path) -> Vec<String> 
         a.push(format!("--mem={m}"));
     }
     a.extend(r.sbatch_args.iter().cloned());
-    a.push(script.display().to_string());
     a
 }
 
