@@ -523,18 +523,26 @@ fn cmd_status(state: &Path, name: &str, json: bool) -> Result<u8, Failure> {
         if !s.tasks_running.is_empty() {
             println!("  running: {}", s.tasks_running.join(", "));
         }
-        let age = crate::store::now_unix() - s.updated_unix;
-        if age >= 0.0 {
-            println!("  last update {age:.0} s ago");
-        } else {
-            // The wall clock moved back since the runner wrote its time stamp.
-            println!(
-                "  last update just now (this machine's clock reads {:.0} s before the update's time stamp)",
-                -age
-            );
-        }
+        println!(
+            "  {}",
+            last_update_line(crate::store::now_unix(), s.updated_unix)
+        );
     }
     Ok(EXIT_OK)
+}
+
+/// How long ago the runner last wrote its snapshot, honest about a clock that moved
+/// back since (the age would be negative).
+fn last_update_line(now_unix: f64, updated_unix: f64) -> String {
+    let age = now_unix - updated_unix;
+    if age >= 0.0 {
+        format!("last update {age:.0} s ago")
+    } else {
+        format!(
+            "last update just now (this machine's clock reads {:.0} s before the update's time stamp)",
+            -age
+        )
+    }
 }
 
 fn cmd_check(file: &Path, json: bool) -> Result<u8, Failure> {
@@ -667,4 +675,17 @@ fn cmd_new(template: Option<&str>, out: Option<&Path>, list: bool) -> Result<u8,
         path.display()
     );
     Ok(EXIT_OK)
+}
+
+#[cfg(test)]
+mod tests {
+    #[test]
+    fn a_clock_that_moved_back_gives_no_negative_age() {
+        assert_eq!(super::last_update_line(100.4, 90.0), "last update 10 s ago");
+        let back = super::last_update_line(90.0, 130.0);
+        assert!(
+            back.starts_with("last update just now") && back.contains("40 s before"),
+            "{back}"
+        );
+    }
 }
