@@ -1,18 +1,20 @@
-//! A fused conditioner forward pass for passes that keep no tape (sampling, latent
-//! Monte Carlo, density evaluation), on f32 with AVX-512.
+//! The fused forward pass of a narrow coupling layer on f32 with AVX-512: sampling,
+//! latent Monte Carlo and density passes run the whole layer here, taped (training)
+//! passes run the conditioner here and keep what the backward pass reads.
 //!
 //! A narrow conditioner (two SiLU hidden layers at most 64 wide, as in low-dimensional
 //! systems) spends as much time between its matrix products as in them when every
 //! layer is a separate call: the hidden activations go to memory and back, and each
 //! call has its own loop set-up. Here six rows at a time go through the whole MLP with
 //! the second hidden layer held in 24 vector registers, the conditioning half gathered
-//! straight from the flow state, and SiLU computed in registers with a reciprocal
-//! estimate refined by one Newton step instead of a division.
+//! straight from the flow state, and SiLU computed in registers in base 2 with a
+//! reciprocal estimate refined by one Newton step instead of a division. A pass without
+//! a tape then maps the transformed half 16 values per instruction.
 //!
-//! Results agree with the layer-by-layer path to float32 rounding (a few ulp), not bit
-//! for bit: the sums run in another order. Owns: this one kernel and the test of its
-//! agreement. Must not touch: taped passes (training keeps the layer-by-layer path, whose
-//! stored activations its backward pass reads).
+//! Results agree with the layer-by-layer path to float32 rounding (a few ulp per layer),
+//! not bit for bit: the sums run in another order and SiLU is approximated differently.
+//! Owns: this kernel and the tests of its agreement. Must not touch: the backward pass
+//! (`tape.rs` keeps it layer by layer, reading the activations and sigmoids kept here).
 
 use crate::flow::Coupling;
 use crate::real::Real;
