@@ -531,6 +531,46 @@ fn cmd_status(state: &Path, name: &str, json: bool) -> Result<u8, Failure> {
     Ok(EXIT_OK)
 }
 
+/// The campaign's goal rules and budgets as `key = value` phrases, for the plan.
+fn stop_rule_lines(r: &spec::StopRules) -> (Vec<String>, Vec<String>) {
+    let mut goals = Vec::new();
+    if let Some(v) = r.expected_states {
+        goals.push(format!("expected_states = {v}"));
+    }
+    if let Some(v) = r.quiet_rounds {
+        goals.push(format!("quiet_rounds = {v}"));
+    }
+    if let Some(c) = &r.coverage {
+        goals.push(format!(
+            "coverage of {:.0}% of [{}, {}] in {} bins",
+            100.0 * c.fraction,
+            c.min,
+            c.max,
+            c.bins
+        ));
+    }
+    if let Some(s) = &r.stability {
+        goals.push(format!(
+            "stable_rounds = {} (moves under {} kT, error bars under {} kT)",
+            s.rounds, s.tolerance, s.max_error
+        ));
+    }
+    if let Some(v) = r.pooled_max_error {
+        goals.push(format!("pooled_max_error = {v} kT"));
+    }
+    if let Some(v) = r.min_ess_fraction {
+        goals.push(format!("min_ess_fraction = {v}"));
+    }
+    let mut budgets = vec![format!("max_rounds = {}", r.max_rounds)];
+    if let Some(v) = r.max_energy_evals {
+        budgets.push(format!("max_energy_evals = {v}"));
+    }
+    if let Some(v) = r.max_wall_seconds {
+        budgets.push(format!("max_wall_seconds = {v}"));
+    }
+    (goals, budgets)
+}
+
 /// How long ago the runner last wrote its snapshot, honest about a clock that moved
 /// back since (the age would be negative).
 fn last_update_line(now_unix: f64, updated_unix: f64) -> String {
@@ -588,21 +628,17 @@ fn cmd_check(file: &Path, json: bool) -> Result<u8, Failure> {
         };
         println!("    {:<9} {:<14} {what}{fan}", s.role.as_str(), s.name);
     }
-    let r = &c.stop;
-    let mut rules = vec![format!("max_rounds = {}", r.max_rounds)];
-    if let Some(v) = r.max_energy_evals {
-        rules.push(format!("max_energy_evals = {v}"));
+    let (goals, budgets) = stop_rule_lines(&c.stop);
+    if goals.is_empty() {
+        println!("  stops when  a budget is spent");
+    } else {
+        let join = if c.stop.all { " and " } else { " or " };
+        println!("  stops when  {}", goals.join(join));
     }
-    if let Some(v) = r.max_wall_seconds {
-        rules.push(format!("max_wall_seconds = {v}"));
-    }
-    if let Some(v) = r.expected_states {
-        rules.push(format!("expected_states = {v}"));
-    }
-    if let Some(v) = r.quiet_rounds {
-        rules.push(format!("quiet_rounds = {v}"));
-    }
-    println!("  stops when  {}", rules.join(" or "));
+    println!(
+        "  budgets     {} (any one spent also stops it)",
+        budgets.join(", ")
+    );
     let e = &c.executor;
     println!(
         "  executor    {}: {} tasks at a time, timeout {:.0} s, {} attempt(s) per task, {} thread(s) per task",

@@ -5,7 +5,7 @@
 //! wall time, which is the one rule that cannot be reproduced exactly).
 //!
 //! Goal rules (`expected_states`, `quiet_rounds`, `coverage`, `stable_rounds`,
-//! `min_ess_fraction`) are checked first and combine with `combine = "any"` (the
+//! `pooled_max_error`, `min_ess_fraction`) are checked first and combine with `combine = "any"` (the
 //! default) or `"all"`; budgets (`max_rounds`, `max_energy_evals`,
 //! `max_wall_seconds`) end the campaign whenever one is spent. The decision carries
 //! the figures that met it.
@@ -98,6 +98,9 @@ pub fn goal_verdicts(rules: &StopRules, p: &Progress) -> Vec<(String, Result<Str
     if let Some(s) = &rules.stability {
         out.push(("stable_rounds".into(), stability_verdict(s, p)));
     }
+    if let Some(limit) = rules.pooled_max_error {
+        out.push(("pooled_max_error".into(), pooled_verdict(limit, p)));
+    }
     if let Some(floor) = rules.min_ess_fraction {
         let last = p
             .rounds
@@ -152,6 +155,43 @@ fn stability_verdict(s: &crate::spec::Stability, p: &Progress) -> Result<String,
         )),
         Ok(rep) => Err(format!("not stable: {:?}", rep.reason)),
         Err(e) => Err(format!("stability cannot be judged: {e}")),
+    }
+}
+
+/// Every state's pooled free energy (`report::pooled_free_energies`: the estimates of
+/// all rounds on the newest reference state, inverse-variance mean, error scaled up by
+/// the Birge ratio when the rounds disagree) known from at least two rounds with an
+/// error bar of at most `limit` kT. Unlike a stability window, rounds that scatter
+/// more than their bars allow make the pooled bar grow, so the rule cannot be met by a
+/// run whose per-round errors are too small.
+fn pooled_verdict(limit: f64, p: &Progress) -> Result<String, String> {
+    if p.states.is_empty() {
+        return Err("no states yet".into());
+    }
+    let pooled = crate::report::pooled_free_energies(p.states);
+    let mut worst: Option<(u32, f64)> = None;
+    for (s, q) in p.states.iter().zip(&pooled) {
+        match q {
+            None => return Err(format!("state {} has no free-energy estimate yet", s.id)),
+            Some(q) if q.n < 2 => {
+                return Err(format!(
+                    "state {} is estimated in {} round; pooling needs 2",
+                    s.id, q.n
+                ))
+            }
+            Some(q) if worst.is_none_or(|(_, e)| q.err > e) => worst = Some((s.id, q.err)),
+            Some(_) => {}
+        }
+    }
+    let (id, err) = worst.expect("at least one state");
+    if err <= limit {
+        Ok(format!(
+            "every state's pooled free energy has an error bar ≤ {limit} kT (largest {err:.3} kT, state {id})"
+        ))
+    } else {
+        Err(format!(
+            "state {id}'s pooled free energy has an error bar of {err:.3} kT (limit {limit})"
+        ))
     }
 }
 
@@ -243,9 +283,61 @@ mod tests {
             quiet_rounds: None,
             all: false,
             stability: None,
+            pooled_max_error: None,
             min_ess_fraction: None,
             coverage: None,
         }
+    }
+
+    #[test]
+    fn pooled_error_rule_needs_two_rounds_and_punishes_scatter() {
+        let rs: Vec<_> = (1..=2).map(|i| round(i, 0, 100)).collect();
+        let verdict = |limit: f64, states: &[StateRecord]| {
+            let p = Progress {
+                rounds: &rs,
+                states,
+                evaluate_stage: None,
+            };
+            pooled_verdict(limit, &p)
+        };
+        let reference = state(0, &[(1, 0.0, 0.0), (2, 0.0, 0.0)]);
+        // 1.0 ± 0.1 and 1.05 ± 0.1 agree: pooled error 0.1 / sqrt(2) = 0.0707 kT.
+        let agree = [
+            reference.clone(),
+            state(1, &[(1, 1.0, 0.1), (2, 1.05, 0.1)]),
+        ];
+        let ok = verdict(0.08, &agree).unwrap();
+        assert!(ok.contains("largest 0.071 kT, state 1"), "{ok}");
+        assert!(verdict(0.05, &agree)
+            .unwrap_err()
+            .contains("0.071 kT (limit 0.05)"));
+        // Bars of 0.01 kT but estimates 1 kT apart: the Birge ratio (70.7) makes the
+        // pooled bar 0.5 kT, so small per-round bars alone cannot meet the rule.
+        let scatter = [
+            reference.clone(),
+            state(1, &[(1, 1.0, 0.01), (2, 2.0, 0.01)]),
+        ];
+        assert!(verdict(0.1, &scatter).unwrap_err().contains("0.500 kT"));
+        let fresh = [reference.clone(), state(1, &[(2, 1.0, 0.01)])];
+        assert!(verdict(1.0, &fresh)
+            .unwrap_err()
+            .contains("pooling needs 2"));
+        let unknown = [reference, state(1, &[])];
+        assert!(verdict(1.0, &unknown)
+            .unwrap_err()
+            .contains("no free-energy estimate"));
+        assert!(verdict(1.0, &[]).is_err());
+        // Through check(): the rule's name is the decision's.
+        let rules = StopRules {
+            pooled_max_error: Some(0.08),
+            ..rules()
+        };
+        let p = Progress {
+            rounds: &rs,
+            states: &agree,
+            evaluate_stage: None,
+        };
+        assert_eq!(check(&rules, &p).unwrap().rule, "pooled_max_error");
     }
 
     #[test]

@@ -140,6 +140,7 @@ struct RawStop {
     stable_rounds: Option<u32>,
     stable_tolerance: Option<f64>,
     stable_max_error: Option<f64>,
+    pooled_max_error: Option<f64>,
     min_ess_fraction: Option<f64>,
     coverage: Option<RawCoverage>,
 }
@@ -287,7 +288,8 @@ pub struct Stage {
 
 /// Rules that end a campaign. Budgets (rounds, energy evaluations, wall time) end it
 /// whenever one is spent; the goal rules (states, quiet rounds, coverage, stability,
-/// ESS) end it when any of them holds, or with `combine = "all"` when all of them do.
+/// pooled error, ESS) end it when any of them holds, or with `combine = "all"` when
+/// all of them do.
 #[derive(Debug, Clone, PartialEq)]
 pub struct StopRules {
     pub max_rounds: u32,
@@ -298,6 +300,10 @@ pub struct StopRules {
     /// Goal rules must all hold (true) or any one (false).
     pub all: bool,
     pub stability: Option<Stability>,
+    /// Every state's free energy, pooled over the rounds (inverse-variance mean with
+    /// the Birge-ratio scale, from at least two rounds), has an error bar of at most
+    /// this many kT.
+    pub pooled_max_error: Option<f64>,
     pub min_ess_fraction: Option<f64>,
     pub coverage: Option<Coverage>,
 }
@@ -1060,6 +1066,11 @@ fn check_stop(ctx: &Ctx, raw: RawStop) -> Result<StopRules, SpecError> {
             })
         }
     };
+    if let Some(e) = raw.pooled_max_error {
+        if !(e.is_finite() && e > 0.0) {
+            return Err(ctx.err("stop.pooled_max_error", "must be a positive number of kT"));
+        }
+    }
     if let Some(f) = raw.min_ess_fraction {
         if !(f > 0.0 && f <= 1.0) {
             return Err(ctx.err("stop.min_ess_fraction", "must be in (0, 1]"));
@@ -1100,6 +1111,7 @@ fn check_stop(ctx: &Ctx, raw: RawStop) -> Result<StopRules, SpecError> {
         quiet_rounds: raw.quiet_rounds,
         all,
         stability,
+        pooled_max_error: raw.pooled_max_error,
         min_ess_fraction: raw.min_ess_fraction,
         coverage,
     })

@@ -35,6 +35,9 @@ fn the_good_file_parses_with_its_defaults() {
     assert_eq!(c.stop.max_rounds, 10);
     assert_eq!(c.executor.retry.attempts, 3);
     assert_eq!(c.stages().len(), 2);
+    assert_eq!(c.stop.pooled_max_error, None);
+    let with_rule = format!("{GOOD}\n[stop]\npooled_max_error = 0.2\n");
+    assert_eq!(parse(&with_rule).unwrap().stop.pooled_max_error, Some(0.2));
 }
 
 #[test]
@@ -90,6 +93,11 @@ fn broken_files_get_exact_messages() {
             "[dedup]\nkind = \"quench\"",
             "[dedup]\ncommand = []",
             "c.toml:17:11: dedup.command: must name a program: [\"program\", \"arg\", ...]\n   |\n17 | command = []\n   |           ^^",
+        ),
+        (
+            "[dedup]\nkind = \"quench\"",
+            "[dedup]\nkind = \"quench\"\n\n[stop]\npooled_max_error = 0.0",
+            "c.toml:20:20: stop.pooled_max_error: must be a positive number of kT\n   |\n20 | pooled_max_error = 0.0\n   |                    ^^^",
         ),
         (
             "[dedup]\nkind = \"quench\"",
