@@ -5,7 +5,7 @@ mod common;
 
 use std::time::{Duration, Instant};
 
-use common::{repo, signal, wait_with_limit, Env};
+use common::{repo, signal, wait_with_limit, walk_campaign, Env};
 use rand::{Rng, SeedableRng};
 
 /// A campaign whose explore stage is the faulty test worker, misbehaving from round 2
@@ -13,40 +13,27 @@ use rand::{Rng, SeedableRng};
 fn faulty_campaign(env: &Env, mode: &str, rounds: u32) -> std::path::PathBuf {
     let mode_file = env.write("mode.txt", mode);
     let worker = repo().join("tests/workers/faulty.py");
-    env.write(
-        "faults.toml",
-        &format!(
-            r#"name = "faults"
-seed = 3
-kT = 10.0
-
-[system]
-model = "muller-brown"
-
-[start]
-points = [[-0.558, 1.442], [0.623, 0.028]]
-
-[[explore]]
-name = "walk"
-command = ["python3", "{}", "{}"]
-walkers = 2
-timeout_seconds = 2.5
-
-[dedup]
-kind = "quench"
-
-[stop]
-max_rounds = {rounds}
-
-[executor]
+    let command = format!(
+        "\"python3\", \"{}\", \"{}\"",
+        worker.display(),
+        mode_file.display()
+    );
+    let executor = "[executor]
 max_parallel = 2
 [executor.retry]
 attempts = 2
 initial_seconds = 0.05
 max_seconds = 0.1
-"#,
-            worker.display(),
-            mode_file.display()
+";
+    env.write(
+        "faults.toml",
+        &walk_campaign(
+            "faults",
+            3,
+            &command,
+            "timeout_seconds = 2.5\n",
+            rounds,
+            executor,
         ),
     )
 }

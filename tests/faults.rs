@@ -25,7 +25,7 @@ use std::process::Stdio;
 use std::sync::{Arc, Barrier};
 use std::time::{Duration, Instant};
 
-use common::{wait_with_limit, Env, Run};
+use common::{wait_with_limit, walk_campaign, Env, Run};
 use sha2::{Digest, Sha256};
 
 /// The worker of every test here. Round 1 always succeeds (one sample: the start point
@@ -170,44 +170,21 @@ fn campaign(env: &Env, mode: &str, s: &Setup) -> PathBuf {
     } else {
         format!("[explore.params]\n{}\n", s.params)
     };
-    env.write(
-        "faults.toml",
-        &format!(
-            r#"name = "faults"
-seed = 5
-kT = 10.0
-
-[system]
-model = "muller-brown"
-
-[start]
-points = [[-0.558, 1.442], [0.623, 0.028]]
-
-[[explore]]
-name = "walk"
-command = ["python3", "worker.py", "mode.txt"{extra}]
-walkers = 2
-timeout_seconds = {timeout}
-{params}
-[dedup]
-kind = "quench"
-
-[stop]
-max_rounds = {rounds}
-
-[executor]
+    let command = format!(r#""python3", "worker.py", "mode.txt"{extra}"#);
+    let explore_extra = format!("timeout_seconds = {}\n{params}", s.timeout);
+    let executor = format!(
+        "[executor]
 max_parallel = 2
-keep_task_dirs = "{keep}"
+keep_task_dirs = \"{}\"
 [executor.retry]
 attempts = 2
 initial_seconds = 0.05
 max_seconds = 0.1
-"#,
-            rounds = s.rounds,
-            keep = s.keep,
-            timeout = s.timeout,
-        ),
-    )
+",
+        s.keep
+    );
+    let text = walk_campaign("faults", 5, &command, &explore_extra, s.rounds, &executor);
+    env.write("faults.toml", &text)
 }
 
 /// A TOML basic string holding `s` literally.

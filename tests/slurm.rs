@@ -17,7 +17,7 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 use std::time::{Duration, Instant};
 
-use common::{repo, signal, wait_with_limit, Env};
+use common::{repo, signal, wait_with_limit, walk_campaign, Env};
 
 /// The one node is shared by every test of this file; the node-failure test takes it
 /// alone (a write lock), the others share it (read locks).
@@ -217,30 +217,14 @@ fn walk_text(executor: &str, rounds: u32, walkers: u32) -> String {
 /// on Slurm.
 fn faulty_text(env: &Env, name: &str, mode: &str, rounds: u32, extra: &str) -> String {
     let mode_file = env.write(&format!("{name}.mode"), mode);
-    format!(
-        r#"name = "{name}"
-seed = 3
-kT = 10.0
-
-[system]
-model = "muller-brown"
-
-[start]
-points = [[-0.558, 1.442], [0.623, 0.028]]
-
-[[explore]]
-name = "walk"
-command = ["python3", "{worker}", "{mode}"]
-walkers = 2
-
-[dedup]
-kind = "quench"
-
-[stop]
-max_rounds = {rounds}
-
-[executor]
-kind = "slurm"
+    let command = format!(
+        "\"python3\", \"{}\", \"{}\"",
+        repo().join("tests/workers/faulty.py").display(),
+        mode_file.display()
+    );
+    let executor = format!(
+        "[executor]
+kind = \"slurm\"
 max_parallel = 4
 [executor.retry]
 attempts = 2
@@ -249,10 +233,9 @@ max_seconds = 0.1
 [executor.slurm]
 poll_max_seconds = 1
 {extra}
-"#,
-        worker = repo().join("tests/workers/faulty.py").display(),
-        mode = mode_file.display(),
-    )
+"
+    );
+    walk_campaign(name, 3, &command, "", rounds, &executor)
 }
 
 /// The events of a campaign whose message mentions `needle`.

@@ -19,7 +19,7 @@ mod common;
 use std::collections::{BTreeMap, BTreeSet};
 use std::time::{Duration, Instant};
 
-use common::{wait_with_limit, Env};
+use common::{wait_with_limit, walk_campaign, Env};
 use rand::{Rng, SeedableRng};
 
 /// Rounds of the campaign.
@@ -95,47 +95,34 @@ open("out/result.json.tmp", "w").write(json.dumps(result))
 os.rename("out/result.json.tmp", "out/result.json")
 "#;
 
-/// The campaign: two walkers per round, a built-in quench, 200 rounds. The timeout is
-/// 4 s, not less: a worker that does not hang takes well under 0.1 s, but on a loaded
-/// 2-core machine a Python start can stall for a second, and a timeout that fires on a
-/// healthy attempt would be a failure nobody injected.
-const CAMPAIGN: &str = r#"name = "soak"
-seed = 11
-kT = 10.0
-
-[system]
-model = "muller-brown"
-
-[start]
-points = [[-0.558, 1.442], [0.623, 0.028]]
-
-[[explore]]
-name = "walk"
-command = ["python3", "worker.py", "mode.txt"]
-walkers = 2
-timeout_seconds = 4.0
-
-[dedup]
-kind = "quench"
-
-[stop]
-max_rounds = 200
-
-[executor]
+/// The campaign's executor: tasks' directories removed, three attempts, short backoff.
+const EXECUTOR: &str = "[executor]
 max_parallel = 2
-keep_task_dirs = "none"
+keep_task_dirs = \"none\"
 [executor.retry]
 attempts = 3
 initial_seconds = 0.02
 max_seconds = 0.05
-"#;
+";
 
-/// Writes the worker, the mode file and the campaign; returns the campaign's path.
+/// Writes the worker, the mode file and the campaign (two walkers per round, a built-in
+/// quench, 200 rounds); returns the campaign's path. The timeout is 4 s, not less: a
+/// worker that does not hang takes well under 0.1 s, but on a loaded 2-core machine a
+/// Python start can stall for a second, and a timeout that fires on a healthy attempt
+/// would be a failure nobody injected.
 fn setup(env: &Env, mode: &str) -> std::path::PathBuf {
     env.write("worker.py", WORKER);
     env.write("mode.txt", mode);
-    assert!(CAMPAIGN.contains(&format!("max_rounds = {ROUNDS}")));
-    env.write("soak.toml", CAMPAIGN)
+    let command = r#""python3", "worker.py", "mode.txt""#;
+    let text = walk_campaign(
+        "soak",
+        11,
+        command,
+        "timeout_seconds = 4.0\n",
+        ROUNDS,
+        EXECUTOR,
+    );
+    env.write("soak.toml", &text)
 }
 
 /// Total samples committed by explore stages, from `tarn rounds --json`.

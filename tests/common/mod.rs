@@ -158,3 +158,41 @@ extern "C" {
     #[link_name = "kill"]
     fn libc_kill(pid: i32, sig: i32) -> i32;
 }
+
+/// The campaign most integration tests run: the Müller–Brown surface from two points,
+/// one explore stage `walk` of two walkers running `command` (the items of a TOML
+/// array, e.g. `"python3", "worker.py", "mode.txt"`) with `explore_extra` lines after
+/// its walkers, a built-in quench, `rounds` rounds, and the `executor` section as given.
+pub fn walk_campaign(
+    name: &str,
+    seed: u64,
+    command: &str,
+    explore_extra: &str,
+    rounds: u32,
+    executor: &str,
+) -> String {
+    format!(
+        r#"name = "{name}"
+seed = {seed}
+kT = 10.0
+
+[system]
+model = "muller-brown"
+
+[start]
+points = [[-0.558, 1.442], [0.623, 0.028]]
+
+[[explore]]
+name = "walk"
+command = [{command}]
+walkers = 2
+{explore_extra}
+[dedup]
+kind = "quench"
+
+[stop]
+max_rounds = {rounds}
+
+{executor}"#
+    )
+}

@@ -343,11 +343,12 @@ pub(crate) mod narrow {
     ) {
         assert!(a.len() >= m * k && b.len() >= k * n && c.len() >= m * n);
         unsafe {
+            let st = (k, 1);
             match n / 16 {
-                1 => rows::<1>(m, k, a, b, c),
-                2 => rows::<2>(m, k, a, b, c),
-                3 => rows::<3>(m, k, a, b, c),
-                _ => rows::<4>(m, k, a, b, c),
+                1 => rows::<1>(m, k, a, st, b, c, false),
+                2 => rows::<2>(m, k, a, st, b, c, false),
+                3 => rows::<3>(m, k, a, st, b, c, false),
+                _ => rows::<4>(m, k, a, st, b, c, false),
             }
         }
     }
@@ -384,11 +385,13 @@ pub(crate) mod narrow {
     ) {
         assert!(a.len() >= m * k && b.len() >= k * n && c.len() >= m * n);
         unsafe {
+            // a is stored k x m: element (i, p) of a^T is a[p * m + i].
+            let st = (1, m);
             match n / 16 {
-                1 => rows_at::<1>(m, k, a, b, c, accumulate),
-                2 => rows_at::<2>(m, k, a, b, c, accumulate),
-                3 => rows_at::<3>(m, k, a, b, c, accumulate),
-                _ => rows_at::<4>(m, k, a, b, c, accumulate),
+                1 => rows::<1>(m, k, a, st, b, c, accumulate),
+                2 => rows::<2>(m, k, a, st, b, c, accumulate),
+                3 => rows::<3>(m, k, a, st, b, c, accumulate),
+                _ => rows::<4>(m, k, a, st, b, c, accumulate),
             }
         }
     }
@@ -406,12 +409,18 @@ pub(crate) mod narrow {
         unreachable!("applies() is false off x86_64")
     }
 
+    /// c = op(a) b (or c += op(a) b when `accumulate`) for c of m x 16 NV, with element
+    /// (i, p) of op(a) at `a[i * a_rs + p * a_cs]`. Six rows of c stay in 24 registers
+    /// while b's rows stream past; a last block that would run past m overlaps the one
+    /// before (m >= 6) and writes only its new rows.
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx512f")]
-    unsafe fn rows_at<const NV: usize>(
+    #[allow(clippy::too_many_arguments)]
+    unsafe fn rows<const NV: usize>(
         m: usize,
         k: usize,
         a: &[f32],
+        (a_rs, a_cs): (usize, usize),
         b: &[f32],
         c: &mut [f32],
         accumulate: bool,
@@ -424,7 +433,7 @@ pub(crate) mod narrow {
         while i < m {
             let i0 = if i + R <= m { i } else { m - R };
             // SAFETY (whole block): offsets stay below m*k, k*n and m*n (asserted by
-            // the caller); rows i0..i0+R of c exist since m >= R.
+            // the callers); rows i0..i0+R of c exist since m >= R.
             unsafe {
                 let mut acc = [[_mm512_setzero_ps(); NV]; R];
                 for p in 0..k {
@@ -433,7 +442,7 @@ pub(crate) mod narrow {
                         *wv = _mm512_loadu_ps(bp.add(p * n + 16 * v));
                     }
                     for (r, accr) in acc.iter_mut().enumerate() {
-                        let s = _mm512_set1_ps(*ap.add(p * m + i0 + r));
+                        let s = _mm512_set1_ps(*ap.add((i0 + r) * a_rs + p * a_cs));
                         for v in 0..NV {
                             accr[v] = _mm512_fmadd_ps(s, w[v], accr[v]);
                         }
@@ -448,44 +457,6 @@ pub(crate) mod narrow {
                             x
                         };
                         _mm512_storeu_ps(dst, x);
-                    }
-                }
-            }
-            i = i0 + R;
-        }
-    }
-
-    #[cfg(target_arch = "x86_64")]
-    #[target_feature(enable = "avx512f")]
-    unsafe fn rows<const NV: usize>(m: usize, k: usize, a: &[f32], b: &[f32], c: &mut [f32]) {
-        use std::arch::x86_64::*;
-        const R: usize = 6;
-        let n = 16 * NV;
-        let (ap, bp, cp) = (a.as_ptr(), b.as_ptr(), c.as_mut_ptr());
-        let mut i = 0;
-        while i < m {
-            // The last block overlaps the previous one instead of running a scalar tail
-            // (rows are independent, so recomputing a few is harmless); m >= R holds.
-            let i0 = if i + R <= m { i } else { m - R };
-            // SAFETY (whole block): every pointer offset stays below m*k, k*n and m*n,
-            // which the caller's assertion covers.
-            unsafe {
-                let mut acc = [[_mm512_setzero_ps(); NV]; R];
-                for p in 0..k {
-                    let mut w = [_mm512_setzero_ps(); NV];
-                    for (v, wv) in w.iter_mut().enumerate() {
-                        *wv = _mm512_loadu_ps(bp.add(p * n + 16 * v));
-                    }
-                    for (r, accr) in acc.iter_mut().enumerate() {
-                        let s = _mm512_set1_ps(*ap.add((i0 + r) * k + p));
-                        for v in 0..NV {
-                            accr[v] = _mm512_fmadd_ps(s, w[v], accr[v]);
-                        }
-                    }
-                }
-                for (r, accr) in acc.iter().enumerate() {
-                    for (v, &x) in accr.iter().enumerate() {
-                        _mm512_storeu_ps(cp.add((i0 + r) * n + 16 * v), x);
                     }
                 }
             }
