@@ -226,9 +226,9 @@ pub(crate) fn matmul_s<T: Real>(
         let (a32, c32) = unsafe { (narrow::as_f32(a), narrow::as_f32_mut(c)) };
         if b_t {
             transpose_into(n, k, b, scratch);
-            unsafe { narrow::product(m, n, k, a32, narrow::as_f32(scratch), c32) };
+            unsafe { narrow::product(m, n, k, a32, false, narrow::as_f32(scratch), c32, false) };
         } else {
-            unsafe { narrow::product(m, n, k, a32, narrow::as_f32(b), c32) };
+            unsafe { narrow::product(m, n, k, a32, false, narrow::as_f32(b), c32, false) };
         }
         return;
     }
@@ -236,7 +236,7 @@ pub(crate) fn matmul_s<T: Real>(
         // SAFETY: as above.
         let (a32, b32, c32) =
             unsafe { (narrow::as_f32(a), narrow::as_f32(b), narrow::as_f32_mut(c)) };
-        unsafe { narrow::product_at(m, n, k, a32, b32, c32, accumulate) };
+        unsafe { narrow::product(m, n, k, a32, true, b32, c32, accumulate) };
         return;
     }
     if threads > 1 || !thin || (a_t && b_t) {
@@ -290,9 +290,9 @@ pub(crate) mod narrow {
     use super::Real;
     use std::any::TypeId;
 
-    /// Whether the kernels handle this product on this CPU for this scalar type (`k` is
-    /// the inner dimension of `product`; `product_at`, which streams its inner
-    /// dimension, is asked with k = 0).
+    /// Whether `product` handles this product on this CPU for this scalar type (`k` is
+    /// its inner dimension; the transposed form, which streams its inner dimension, is
+    /// asked with k = 0).
     pub(super) fn applies<T: Real>(m: usize, n: usize, k: usize) -> bool {
         #[cfg(target_arch = "x86_64")]
         {
@@ -328,65 +328,29 @@ pub(crate) mod narrow {
         unsafe { std::slice::from_raw_parts_mut(x.as_mut_ptr() as *mut f32, x.len()) }
     }
 
-    /// c (m x n) = a (m x k) b (k x n), all row-major.
+    /// c (m x n) = op(a) b, or c += op(a) b when `accumulate`, all row-major, where
+    /// op(a) is a (m x k) or, when `a_t`, the transpose of a stored k x m (the weight
+    /// gradient of a dense layer, input^T g).
     ///
     /// # Safety
-    /// The CPU must support AVX-512F and `applies` must hold for (m, n, k).
+    /// The CPU must support AVX-512F and `applies` must hold for (m, n, k), with k = 0
+    /// when `a_t` (that form streams its inner dimension).
     #[cfg(target_arch = "x86_64")]
+    #[allow(clippy::too_many_arguments)]
     pub(super) unsafe fn product(
         m: usize,
         n: usize,
         k: usize,
         a: &[f32],
-        b: &[f32],
-        c: &mut [f32],
-    ) {
-        assert!(a.len() >= m * k && b.len() >= k * n && c.len() >= m * n);
-        unsafe {
-            let st = (k, 1);
-            match n / 16 {
-                1 => rows::<1>(m, k, a, st, b, c, false),
-                2 => rows::<2>(m, k, a, st, b, c, false),
-                3 => rows::<3>(m, k, a, st, b, c, false),
-                _ => rows::<4>(m, k, a, st, b, c, false),
-            }
-        }
-    }
-
-    #[cfg(not(target_arch = "x86_64"))]
-    pub(super) unsafe fn product(
-        _: usize,
-        _: usize,
-        _: usize,
-        _: &[f32],
-        _: &[f32],
-        _: &mut [f32],
-    ) {
-        unreachable!("applies() is false off x86_64")
-    }
-
-    /// c (m x n) = a^T b, or c += a^T b when `accumulate`, with a stored k x m and b
-    /// k x n (row-major): the weight gradient of a dense layer, input^T g. Six rows of c
-    /// (six columns of a, adjacent in each row of a) stay in registers while the rows of
-    /// b stream past; a last block that would run past m overlaps the one before and
-    /// writes only its new rows.
-    ///
-    /// # Safety
-    /// The CPU must support AVX-512F and `applies` must hold for (m, n, 0).
-    #[cfg(target_arch = "x86_64")]
-    pub(super) unsafe fn product_at(
-        m: usize,
-        n: usize,
-        k: usize,
-        a: &[f32],
+        a_t: bool,
         b: &[f32],
         c: &mut [f32],
         accumulate: bool,
     ) {
         assert!(a.len() >= m * k && b.len() >= k * n && c.len() >= m * n);
+        // Element (i, p) of op(a) sits at a[i * rs + p * cs].
+        let st = if a_t { (1, m) } else { (k, 1) };
         unsafe {
-            // a is stored k x m: element (i, p) of a^T is a[p * m + i].
-            let st = (1, m);
             match n / 16 {
                 1 => rows::<1>(m, k, a, st, b, c, accumulate),
                 2 => rows::<2>(m, k, a, st, b, c, accumulate),
@@ -397,11 +361,13 @@ pub(crate) mod narrow {
     }
 
     #[cfg(not(target_arch = "x86_64"))]
-    pub(super) unsafe fn product_at(
+    #[allow(clippy::too_many_arguments)]
+    pub(super) unsafe fn product(
         _: usize,
         _: usize,
         _: usize,
         _: &[f32],
+        _: bool,
         _: &[f32],
         _: &mut [f32],
         _: bool,
