@@ -15,6 +15,7 @@ mod real;
 mod sample;
 mod spec;
 mod tape;
+mod team;
 mod train;
 mod workspace;
 

@@ -1,17 +1,19 @@
 //! Batched passes over a flow on a fixed number of threads: generation, inversion,
 //! log-densities, and the loss gradients of training (maximum likelihood and reverse
-//! KL). A `Workspace` owns the preallocated chunk tapes, the per-chunk gradients and a
-//! private rayon pool.
+//! KL). A `Workspace` owns the preallocated chunk tapes, the per-chunk gradients, the
+//! team of threads that runs the chunks, and a private rayon pool (reductions, the
+//! optimiser, GEMM splitting).
 //!
 //! Threading is either by batch (the rows are cut into one contiguous chunk per thread,
-//! each chunk runs the whole flow with single-threaded GEMMs, and the chunk gradients
-//! are summed in chunk order) or by GEMM (one chunk, every matrix product split over the
+//! each chunk runs the whole flow with single-threaded GEMMs on its own thread of the
+//! team, and the chunk gradients are summed in chunk order) or by GEMM (one chunk, every matrix product split over the
 //! threads). Both give results that depend only on the thread count, never on
 //! scheduling.
 
 use crate::flow::Flow;
 use crate::real::{add_assign, Real};
 use crate::tape::Tape;
+use crate::team::Team;
 use crate::FlowError;
 use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
@@ -73,6 +75,9 @@ pub fn regularise_energy(u: f64, cutoff: f64) -> (f64, f64) {
 pub struct Workspace<T: Real> {
     tapes: Vec<Tape<T>>,
     grads: Vec<Vec<T>>,
+    /// Runs the chunks of batch splitting (the caller and threads - 1 helpers).
+    team: Option<Team>,
+    /// Parallel reductions, the optimiser, and GEMM splitting.
     pool: Option<rayon::ThreadPool>,
     threads: usize,
     shape: (usize, usize, usize),
@@ -133,9 +138,15 @@ impl<T: Real> Workspace<T> {
         } else {
             None
         };
+        let team = if n_chunks > 1 {
+            Some(Team::new(n_chunks - 1).map_err(|e| FlowError::Threads(e.to_string()))?)
+        } else {
+            None
+        };
         Ok(Workspace {
             tapes,
             grads,
+            team,
             pool,
             threads,
             shape: (flow.dim(), flow.data_dim(), flow.n_params()),
@@ -179,26 +190,32 @@ impl<T: Real> Workspace<T> {
                 tape.rows_done += rows;
             }
         };
-        let tapes = &mut self.tapes;
-        let grads = &mut self.grads;
-        match &self.pool {
-            Some(pool) if nt > 1 => pool.install(|| {
-                tapes
-                    .par_iter_mut()
-                    .zip(grads.par_iter_mut())
-                    .enumerate()
-                    .for_each(job)
-            }),
-            Some(pool) => pool.install(|| {
-                tapes
+        match (&self.team, &self.pool) {
+            (Some(team), _) if nt > 1 => {
+                let (tapes, grads) = (
+                    Shared(self.tapes.as_mut_ptr()),
+                    Shared(self.grads.as_mut_ptr()),
+                );
+                let run_chunk = |c: usize| {
+                    // SAFETY: the team runs each chunk index once per call, on one thread,
+                    // and `run` returns only when all have finished, so these are the
+                    // only references to tape c and gradient c while they live.
+                    let (tape, grad) = unsafe { (&mut *tapes.at(c), &mut *grads.at(c)) };
+                    job((c, (tape, grad)));
+                };
+                team.run(nt, &run_chunk);
+            }
+            (_, Some(pool)) => pool.install(|| {
+                self.tapes
                     .iter_mut()
-                    .zip(grads.iter_mut())
+                    .zip(self.grads.iter_mut())
                     .enumerate()
                     .for_each(job)
             }),
-            None => tapes
+            (_, None) => self
+                .tapes
                 .iter_mut()
-                .zip(grads.iter_mut())
+                .zip(self.grads.iter_mut())
                 .enumerate()
                 .for_each(job),
         }
@@ -588,6 +605,22 @@ impl<T: Real> Workspace<T> {
 /// rows per thread): batch splitting ran training steps 14-24% and sampling 26-40%
 /// faster than GEMM splitting.
 const MIN_CHUNK_ROWS: usize = 64;
+
+/// A pointer to the workspace's per-chunk buffers, handed to the team's threads (each
+/// uses only its own chunk's element).
+struct Shared<P>(*mut P);
+
+impl<P> Shared<P> {
+    /// Element `i` (the caller keeps `i` in bounds).
+    fn at(&self, i: usize) -> *mut P {
+        self.0.wrapping_add(i)
+    }
+}
+
+// SAFETY: see `run_block`: every thread dereferences a different element, and the
+// owner waits for all of them.
+unsafe impl<P: Send> Sync for Shared<P> {}
+unsafe impl<P: Send> Send for Shared<P> {}
 
 /// Parameter count of one parallel reduction block (fixed, so sums never depend on
 /// scheduling).
