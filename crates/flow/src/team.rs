@@ -98,8 +98,8 @@ impl Team {
 
     /// Runs `job(0)` on the calling thread and `job(1)` .. `job(chunks - 1)` on helpers
     /// 1 .. chunks - 1, and returns when all have finished. A panic in a helper's chunk
-    /// is raised here once every chunk has ended.
-    pub(crate) fn run(&self, chunks: usize, job: Job) {
+    /// is raised here once every chunk has ended. (`&mut`: one job at a time.)
+    pub(crate) fn run(&mut self, chunks: usize, job: Job) {
         let used = chunks.saturating_sub(1);
         assert!(
             used <= self.helpers.len(),
@@ -207,7 +207,7 @@ mod tests {
 
     #[test]
     fn every_chunk_runs_once_on_its_own_thread_call_after_call() {
-        let team = Team::new(3).unwrap();
+        let mut team = Team::new(3).unwrap();
         for round in 0..2000u32 {
             let chunks = 1 + (round % 4) as usize;
             let hits: Vec<AtomicU32> = (0..4).map(|_| AtomicU32::new(0)).collect();
@@ -235,7 +235,7 @@ mod tests {
 
     #[test]
     fn a_panicking_chunk_is_raised_after_every_chunk_ended_and_the_team_goes_on() {
-        let team = Team::new(1).unwrap();
+        let mut team = Team::new(1).unwrap();
         let finished = AtomicU32::new(0);
         let r = catch_unwind(AssertUnwindSafe(|| {
             team.run(2, &|i| {

@@ -190,7 +190,7 @@ impl<T: Real> Workspace<T> {
                 tape.rows_done += rows;
             }
         };
-        match (&self.team, &self.pool) {
+        match (&mut self.team, &self.pool) {
             (Some(team), _) if nt > 1 => {
                 let (tapes, grads) = (
                     Shared(self.tapes.as_mut_ptr()),
