@@ -22,7 +22,18 @@ struct Row {
     figures: serde_json::Value,
 }
 
-fn campaign_text(name: &str, walkers: u32, rounds: u32, parallel: u32) -> String {
+/// A campaign of `walkers` tasks per round that compute nothing (`hold` explore on the
+/// Müller–Brown surface), `rounds` rounds, `parallel` tasks in flight, task directories
+/// removed, and `executor_extra` (e.g. `kind = "slurm"` and its table) at the end of the
+/// `[executor]` section: the time of a round is the orchestration overhead. Shared with
+/// the Slurm executor's overhead test.
+pub fn campaign_text(
+    name: &str,
+    walkers: u32,
+    rounds: u32,
+    parallel: u32,
+    executor_extra: &str,
+) -> String {
     format!(
         r#"name = "{name}"
 seed = 1
@@ -43,6 +54,7 @@ max_rounds = {rounds}
 [executor]
 max_parallel = {parallel}
 keep_task_dirs = "none"
+{executor_extra}
 "#
     )
 }
@@ -139,7 +151,7 @@ fn measure(tmp: &Path, tasks: u32, json: bool) -> anyhow::Result<u8> {
     for rep in 0..3 {
         let name = format!("overhead{rep}");
         let file = tmp.join(format!("{name}.toml"));
-        std::fs::write(&file, campaign_text(&name, tasks, 1, 1))?;
+        std::fs::write(&file, campaign_text(&name, tasks, 1, 1, ""))?;
         let t = Instant::now();
         run_in_process(tmp, &file, false)?;
         let engine_total = t.elapsed().as_secs_f64();
@@ -174,11 +186,11 @@ fn measure(tmp: &Path, tasks: u32, json: bool) -> anyhow::Result<u8> {
 
     // 2. A long campaign: memory at 200 and at 1000 rounds, then the reopen time.
     let file = tmp.join("long.toml");
-    std::fs::write(&file, campaign_text("long", 1, 200, 1))?;
+    std::fs::write(&file, campaign_text("long", 1, 200, 1, ""))?;
     let t = Instant::now();
     run_in_process(tmp, &file, false)?;
     let rss_200 = peak_rss_mb();
-    std::fs::write(&file, campaign_text("long", 1, 1000, 1))?;
+    std::fs::write(&file, campaign_text("long", 1, 1000, 1, ""))?;
     run_in_process(tmp, &file, true)?;
     let build = t.elapsed().as_secs_f64();
     let rss_1000 = peak_rss_mb();

@@ -5,7 +5,7 @@
 
 pub mod bench;
 mod bench_discovery;
-mod bench_engine;
+pub mod bench_engine;
 pub mod cli;
 pub mod engine;
 pub mod executor;

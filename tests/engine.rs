@@ -5,7 +5,7 @@ mod common;
 
 use std::time::{Duration, Instant};
 
-use common::{repo, signal, wait_with_limit, walk_campaign, Env};
+use common::{example_walk, repo, signal, wait_with_limit, walk_campaign, Env};
 use rand::{Rng, SeedableRng};
 
 /// A campaign whose explore stage is the faulty test worker, misbehaving from round 2
@@ -268,17 +268,7 @@ fn a_changed_campaign_file_is_refused_with_a_diff_unless_accepted() {
 #[test]
 fn sigkill_at_twenty_random_instants_then_resume_gives_the_clean_digest() {
     let clean = Env::new();
-    let text = std::fs::read_to_string(repo().join("examples/python-worker/campaign.toml"))
-        .unwrap()
-        .replace(
-            "random_walk.py",
-            repo()
-                .join("examples/python-worker/random_walk.py")
-                .to_str()
-                .unwrap(),
-        )
-        .replace("n_steps = 2000", "n_steps = 400")
-        .replace("max_rounds = 5", "max_rounds = 8");
+    let text = example_walk(8);
     let file = clean.write("walk.toml", &text);
     let t = Instant::now();
     clean

@@ -17,7 +17,7 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 use std::time::{Duration, Instant};
 
-use common::{repo, signal, wait_with_limit, walk_campaign, Env};
+use common::{example_walk, repo, signal, wait_with_limit, walk_campaign, Env};
 
 /// The one node is shared by every test of this file; the node-failure test takes it
 /// alone (a write lock), the others share it (read locks).
@@ -198,19 +198,7 @@ impl Cluster {
 
 /// The example Python walk, a few rounds, with a given `[executor]` section.
 fn walk_text(executor: &str, rounds: u32, walkers: u32) -> String {
-    std::fs::read_to_string(repo().join("examples/python-worker/campaign.toml"))
-        .unwrap()
-        .replace(
-            "random_walk.py",
-            repo()
-                .join("examples/python-worker/random_walk.py")
-                .to_str()
-                .unwrap(),
-        )
-        .replace("n_steps = 2000", "n_steps = 400")
-        .replace("walkers = 3", &format!("walkers = {walkers}"))
-        .replace("max_rounds = 5", &format!("max_rounds = {rounds}"))
-        + executor
+    example_walk(rounds).replace("walkers = 3", &format!("walkers = {walkers}")) + executor
 }
 
 /// The faulty test worker's campaign (misbehaving from round 2 as the mode file says),
@@ -308,33 +296,29 @@ fn slurm_settings_are_validated_with_the_key_and_line() {
         // Errors point at the file and line, like every other campaign-file error.
         assert!(r.stderr.contains("bad.toml:"), "{}", r.stderr);
     }
-    // A stage's own table, with the stage in the key path.
-    let text = walk_text("\n[executor]\nkind = \"slurm\"\n", 1, 1).replace(
-        "[dedup]\nkind = \"quench\"\n",
-        "[dedup]\nkind = \"quench\"\n[dedup.slurm]\ntime_limit = \"0:00\"\n",
-    );
-    let file = env.write("bad.toml", &text);
-    let r = env.tarn(&["check", file.to_str().unwrap()]);
-    r.code(2);
-    assert!(
-        r.stderr
-            .contains("dedup.slurm.time_limit: '0:00' is not a Slurm time limit"),
-        "{}",
-        r.stderr
-    );
-    let text = walk_text("", 1, 1).replace(
-        "[dedup]\nkind = \"quench\"\n",
-        "[dedup]\nkind = \"quench\"\n[dedup.slurm]\ncpus = 2\n",
-    );
-    let file = env.write("bad.toml", &text);
-    let r = env.tarn(&["check", file.to_str().unwrap()]);
-    r.code(2);
-    assert!(
-        r.stderr
-            .contains("dedup.slurm: Slurm resources need executor.kind = \"slurm\""),
-        "{}",
-        r.stderr
-    );
+    // A stage's own table: the stage in the key path, and refused under a local executor.
+    let stage_cases = [
+        (
+            "\n[executor]\nkind = \"slurm\"\n",
+            "time_limit = \"0:00\"",
+            "dedup.slurm.time_limit: '0:00' is not a Slurm time limit",
+        ),
+        (
+            "",
+            "cpus = 2",
+            "dedup.slurm: Slurm resources need executor.kind = \"slurm\"",
+        ),
+    ];
+    for (executor, table, want) in stage_cases {
+        let text = walk_text(executor, 1, 1).replace(
+            "[dedup]\nkind = \"quench\"\n",
+            &format!("[dedup]\nkind = \"quench\"\n[dedup.slurm]\n{table}\n"),
+        );
+        let file = env.write("bad.toml", &text);
+        let r = env.tarn(&["check", file.to_str().unwrap()]);
+        r.code(2);
+        assert!(r.stderr.contains(want), "want {want:?}, got\n{}", r.stderr);
+    }
     // A good one passes.
     let good = walk_text(
         "\n[executor]\nkind = \"slurm\"\n[executor.slurm]\npartition = \"debug\"\ntime_limit = \"1-00:30:00\"\ncpus = 2\nmemory = \"4G\"\nsbatch_args = [\"--qos=normal\"]\n",
@@ -607,29 +591,7 @@ fn overhead_and_tasks_in_flight_figures() {
     let Some(sbatch) = slurm() else { return };
     let _node = share_node();
     let hold = |name: &str, walkers: u32, parallel: u32, exec: &str| {
-        format!(
-            r#"name = "{name}"
-seed = 1
-kT = 10.0
-[system]
-model = "muller-brown"
-[start]
-points = [[-0.558, 1.442]]
-[[explore]]
-name = "idle"
-kind = "hold"
-walkers = {walkers}
-restart = "start"
-[dedup]
-kind = "quench"
-[stop]
-max_rounds = 1
-[executor]
-max_parallel = {parallel}
-keep_task_dirs = "none"
-{exec}
-"#
-        )
+        tarn::bench_engine::campaign_text(name, walkers, 1, parallel, exec)
     };
     let n = 10u32;
     let time_run = |c: &Cluster, name: &str, text: &str| {

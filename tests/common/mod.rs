@@ -196,3 +196,19 @@ max_rounds = {rounds}
 {executor}"#
     )
 }
+
+/// The example Python random-walk campaign (`examples/python-worker/`) with its worker
+/// at an absolute path, 400 steps per walker instead of 2000, and `rounds` rounds.
+pub fn example_walk(rounds: u32) -> String {
+    std::fs::read_to_string(repo().join("examples/python-worker/campaign.toml"))
+        .expect("the example campaign")
+        .replace(
+            "random_walk.py",
+            repo()
+                .join("examples/python-worker/random_walk.py")
+                .to_str()
+                .expect("a UTF-8 path"),
+        )
+        .replace("n_steps = 2000", "n_steps = 400")
+        .replace("max_rounds = 5", &format!("max_rounds = {rounds}"))
+}

@@ -193,7 +193,8 @@ mod simd {
         let n = _mm512_roundscale_ps::<{ _MM_FROUND_TO_NEAREST_INT | _MM_FROUND_NO_EXC }>(t);
         let f = _mm512_sub_ps(t, n);
         let mut p = _mm512_set1_ps(1.326_472_4e-3);
-        // Fitted coefficients (the linear one is close to ln 2 but is not ln 2).
+        // Fitted coefficients (the linear one is close to ln 2 but is not ln 2), from
+        // crates/flow/tools/fit_exp2.py.
         #[allow(clippy::approx_constant)]
         for c in [9.671_513e-3, 5.550_733_6e-2, 0.240_222_42, 0.693_147, 1.0] {
             p = _mm512_fmadd_ps(p, f, _mm512_set1_ps(c));

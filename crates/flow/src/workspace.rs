@@ -193,8 +193,8 @@ impl<T: Real> Workspace<T> {
         match (&mut self.team, &self.pool) {
             (Some(team), _) if nt > 1 => {
                 let (tapes, grads) = (
-                    Shared(self.tapes.as_mut_ptr()),
-                    Shared(self.grads.as_mut_ptr()),
+                    ChunkPtr(self.tapes.as_mut_ptr()),
+                    ChunkPtr(self.grads.as_mut_ptr()),
                 );
                 let run_chunk = |c: usize| {
                     // SAFETY: the team runs each chunk index once per call, on one thread,
@@ -608,9 +608,9 @@ const MIN_CHUNK_ROWS: usize = 64;
 
 /// A pointer to the workspace's per-chunk buffers, handed to the team's threads (each
 /// uses only its own chunk's element).
-struct Shared<P>(*mut P);
+struct ChunkPtr<P>(*mut P);
 
-impl<P> Shared<P> {
+impl<P> ChunkPtr<P> {
     /// Element `i` (the caller keeps `i` in bounds).
     fn at(&self, i: usize) -> *mut P {
         self.0.wrapping_add(i)
@@ -619,8 +619,8 @@ impl<P> Shared<P> {
 
 // SAFETY: see `run_block`: every thread dereferences a different element, and the
 // owner waits for all of them.
-unsafe impl<P: Send> Sync for Shared<P> {}
-unsafe impl<P: Send> Send for Shared<P> {}
+unsafe impl<P: Send> Sync for ChunkPtr<P> {}
+unsafe impl<P: Send> Send for ChunkPtr<P> {}
 
 /// Parameter count of one parallel reduction block (fixed, so sums never depend on
 /// scheduling).
