@@ -1,0 +1,309 @@
+//! The conditioner networks of the layer stack: a dense network (an MLP over one row of
+//! conditioning values) and a periodic convolutional network over an L×L lattice, which
+//! is the same dense stack applied to every site's k×k neighbourhood (a patch gathered
+//! with periodic wrap-around), so that it commutes with lattice translations.
+//!
+//! Both keep what their backward pass needs in a [`NetTape`]: the input and every
+//! layer's post-activation output (and the pre-activation of hidden layers). Backward
+//! re-gathers patches from those, so memory stays O(rows × channels).
+//!
+//! Parameter layout per linear layer l: W [n_in · patch, n_out] row-major, then b [n_out].
+
+use crate::real::{matmul, Real};
+use crate::spec::Activation;
+use rand::Rng;
+use rand_chacha::ChaCha8Rng;
+
+/// Shape of a conditioner network.
+#[derive(Debug, Clone, PartialEq)]
+pub(crate) struct NetShape {
+    /// Channels (or widths) from input to output: [c_in, h1, ..., c_out].
+    pub sizes: Vec<usize>,
+    /// Hidden nonlinearity.
+    pub activation: Activation,
+    /// `Some((side, kernel))` for a periodic convolution over a side×side lattice with a
+    /// kernel×kernel patch (kernel odd); `None` for a dense network over rows.
+    pub conv: Option<(usize, usize)>,
+}
+
+impl NetShape {
+    /// Values in one patch per input channel (1 for a dense network).
+    fn patch(&self) -> usize {
+        self.conv.map_or(1, |(_, k)| k * k)
+    }
+
+    /// Sites per configuration (1 for a dense network).
+    pub fn sites(&self) -> usize {
+        self.conv.map_or(1, |(l, _)| l * l)
+    }
+
+    /// Number of parameters.
+    pub fn n_params(&self) -> usize {
+        let p = self.patch();
+        self.sizes.windows(2).map(|w| w[0] * p * w[1] + w[1]).sum()
+    }
+
+    /// Glorot-uniform hidden weights, zero biases, and a zero output layer, so that a new
+    /// network outputs exactly zero (a new coupling layer is then the identity).
+    pub fn init<T: Real>(&self, rng: &mut ChaCha8Rng, out: &mut [T]) {
+        let p = self.patch();
+        let mut off = 0;
+        let last = self.sizes.len() - 2;
+        for (l, w) in self.sizes.windows(2).enumerate() {
+            let (fan_in, fan_out) = (w[0] * p, w[1]);
+            let limit = (6.0 / (fan_in + fan_out) as f64).sqrt();
+            for v in &mut out[off..off + fan_in * fan_out] {
+                *v = if l == last {
+                    T::zero()
+                } else {
+                    T::of(rng.gen_range(-limit..limit))
+                };
+            }
+            off += fan_in * fan_out;
+            out[off..off + fan_out].fill(T::zero());
+            off += fan_out;
+        }
+    }
+}
+
+/// What a forward pass keeps for its backward pass.
+#[derive(Debug, Default)]
+pub(crate) struct NetTape<T> {
+    /// post[0] is the input; post[l + 1] the output of linear layer l (after its
+    /// activation for hidden layers).
+    post: Vec<Vec<T>>,
+    /// Pre-activations of hidden layers.
+    pre: Vec<Vec<T>>,
+    /// Gathered patches (scratch).
+    patches: Vec<T>,
+    /// Gradient buffers (scratch).
+    g_a: Vec<T>,
+    g_b: Vec<T>,
+}
+
+impl<T: Real> NetTape<T> {
+    /// The input buffer, sized for `rows` rows (for a convolution, rows × sites), to be
+    /// filled by the caller before [`forward`].
+    pub fn input(&mut self, shape: &NetShape, rows: usize) -> &mut [T] {
+        if self.post.len() != shape.sizes.len() {
+            self.post = vec![Vec::new(); shape.sizes.len()];
+            self.pre = vec![Vec::new(); shape.sizes.len()];
+        }
+        let n = rows * shape.sites() * shape.sizes[0];
+        self.post[0].resize(n, T::zero());
+        &mut self.post[0][..n]
+    }
+
+    /// The output of the last forward pass: [rows × sites, c_out].
+    pub fn output(&self) -> &[T] {
+        self.post.last().map_or(&[], |v| &v[..])
+    }
+}
+
+/// Gathers the kernel×kernel periodic neighbourhood of every site: `src` is
+/// [n × side², c] (site-major, channels last), `dst` [n × side², k² c].
+fn gather_patches<T: Real>(src: &[T], n: usize, side: usize, k: usize, c: usize, dst: &mut [T]) {
+    let s = side * side;
+    let h = (k / 2) as isize;
+    let pc = k * k * c;
+    for i in 0..n {
+        for r in 0..side {
+            for col in 0..side {
+                let row_out = (i * s + r * side + col) * pc;
+                let mut q = 0;
+                for dr in -h..=h {
+                    let rr = (r as isize + dr).rem_euclid(side as isize) as usize;
+                    for dc in -h..=h {
+                        let cc = (col as isize + dc).rem_euclid(side as isize) as usize;
+                        let from = (i * s + rr * side + cc) * c;
+                        dst[row_out + q * c..row_out + (q + 1) * c]
+                            .copy_from_slice(&src[from..from + c]);
+                        q += 1;
+                    }
+                }
+            }
+        }
+    }
+}
+
+/// The adjoint of [`gather_patches`]: adds every patch gradient back onto its sites.
+fn scatter_patches<T: Real>(
+    g_patch: &[T],
+    n: usize,
+    side: usize,
+    k: usize,
+    c: usize,
+    dst: &mut [T],
+) {
+    let s = side * side;
+    let h = (k / 2) as isize;
+    let pc = k * k * c;
+    dst[..n * s * c].fill(T::zero());
+    for i in 0..n {
+        for r in 0..side {
+            for col in 0..side {
+                let row_in = (i * s + r * side + col) * pc;
+                let mut q = 0;
+                for dr in -h..=h {
+                    let rr = (r as isize + dr).rem_euclid(side as isize) as usize;
+                    for dc in -h..=h {
+                        let cc = (col as isize + dc).rem_euclid(side as isize) as usize;
+                        let to = (i * s + rr * side + cc) * c;
+                        for ch in 0..c {
+                            dst[to + ch] += g_patch[row_in + q * c + ch];
+                        }
+                        q += 1;
+                    }
+                }
+            }
+        }
+    }
+}
+
+#[inline(always)]
+fn act<T: Real>(a: Activation, x: T) -> T {
+    match a {
+        Activation::Tanh => x.tanh(),
+        Activation::Silu => x / (T::one() + (-x).exp()),
+        Activation::Relu => x.max(T::zero()),
+    }
+}
+
+#[inline(always)]
+fn act_grad<T: Real>(a: Activation, x: T) -> T {
+    match a {
+        Activation::Tanh => {
+            let t = x.tanh();
+            T::one() - t * t
+        }
+        Activation::Silu => {
+            let s = T::one() / (T::one() + (-x).exp());
+            s + x * s * (T::one() - s)
+        }
+        Activation::Relu => {
+            if x > T::zero() {
+                T::one()
+            } else {
+                T::zero()
+            }
+        }
+    }
+}
+
+/// Runs the network on `rows` rows whose input the caller wrote into
+/// [`NetTape::input`]; the result is [`NetTape::output`].
+pub(crate) fn forward<T: Real>(shape: &NetShape, params: &[T], rows: usize, tape: &mut NetTape<T>) {
+    let m = rows * shape.sites();
+    let p = shape.patch();
+    let n_lin = shape.sizes.len() - 1;
+    let mut off = 0;
+    for l in 0..n_lin {
+        let (ci, co) = (shape.sizes[l], shape.sizes[l + 1]);
+        let kin = ci * p;
+        let (w, b) = (
+            &params[off..off + kin * co],
+            &params[off + kin * co..off + kin * co + co],
+        );
+        off += kin * co + co;
+        let (head, tail) = tape.post.split_at_mut(l + 1);
+        let src = &head[l][..m * ci];
+        let dst = &mut tail[0];
+        dst.resize(m * co, T::zero());
+        let a: &[T] = match shape.conv {
+            Some((side, k)) => {
+                tape.patches.resize(m * kin, T::zero());
+                gather_patches(src, rows, side, k, ci, &mut tape.patches);
+                &tape.patches[..m * kin]
+            }
+            None => src,
+        };
+        matmul(m, co, kin, a, false, w, false, dst, false, 1);
+        for row in dst.chunks_mut(co) {
+            for (v, &bb) in row.iter_mut().zip(b) {
+                *v += bb;
+            }
+        }
+        if l + 1 < n_lin {
+            let pre = &mut tape.pre[l];
+            pre.resize(m * co, T::zero());
+            pre.copy_from_slice(&dst[..m * co]);
+            for v in dst.iter_mut() {
+                *v = act(shape.activation, *v);
+            }
+        }
+    }
+}
+
+/// Backward pass of the last [`forward`] on the same tape: `g_out` is dL/d(output)
+/// ([rows × sites, c_out]); adds dL/dparams into `g_params` and writes dL/d(input) into
+/// `g_in` ([rows × sites, c_in]).
+pub(crate) fn backward<T: Real>(
+    shape: &NetShape,
+    params: &[T],
+    rows: usize,
+    tape: &mut NetTape<T>,
+    g_out: &[T],
+    g_params: &mut [T],
+    g_in: &mut [T],
+) {
+    let m = rows * shape.sites();
+    let p = shape.patch();
+    let n_lin = shape.sizes.len() - 1;
+    // Offsets of each linear layer's parameters.
+    let mut offs = Vec::with_capacity(n_lin);
+    let mut off = 0;
+    for l in 0..n_lin {
+        offs.push(off);
+        off += shape.sizes[l] * p * shape.sizes[l + 1] + shape.sizes[l + 1];
+    }
+    let mut g = std::mem::take(&mut tape.g_a);
+    let mut g_prev = std::mem::take(&mut tape.g_b);
+    g.clear();
+    g.extend_from_slice(&g_out[..m * shape.sizes[n_lin]]);
+    for l in (0..n_lin).rev() {
+        let (ci, co) = (shape.sizes[l], shape.sizes[l + 1]);
+        let kin = ci * p;
+        if l + 1 < n_lin {
+            for (gv, &x) in g.iter_mut().zip(&tape.pre[l]) {
+                *gv *= act_grad(shape.activation, x);
+            }
+        }
+        let o = offs[l];
+        let w = &params[o..o + kin * co];
+        let src = &tape.post[l][..m * ci];
+        let a: &[T] = match shape.conv {
+            Some((side, k)) => {
+                tape.patches.resize(m * kin, T::zero());
+                gather_patches(src, rows, side, k, ci, &mut tape.patches);
+                &tape.patches[..m * kin]
+            }
+            None => src,
+        };
+        // dW += a^T g; db += colsum g.
+        let (gw, gb) = g_params[o..o + kin * co + co].split_at_mut(kin * co);
+        matmul(kin, co, m, a, true, &g, false, gw, true, 1);
+        for row in g.chunks(co) {
+            for (acc, &v) in gb.iter_mut().zip(row) {
+                *acc += v;
+            }
+        }
+        // d(input) = g W^T (through the patches for a convolution).
+        let dst: &mut Vec<T> = &mut g_prev;
+        match shape.conv {
+            Some((side, k)) => {
+                tape.patches.resize(m * kin, T::zero());
+                matmul(m, kin, co, &g, false, w, true, &mut tape.patches, false, 1);
+                dst.resize(m * ci, T::zero());
+                scatter_patches(&tape.patches, rows, side, k, ci, dst);
+            }
+            None => {
+                dst.resize(m * ci, T::zero());
+                matmul(m, ci, co, &g, false, w, true, dst, false, 1);
+            }
+        }
+        std::mem::swap(&mut g, &mut g_prev);
+    }
+    g_in[..m * shape.sizes[0]].copy_from_slice(&g[..m * shape.sizes[0]]);
+    tape.g_a = g;
+    tape.g_b = g_prev;
+}

@@ -1,0 +1,1 @@
+//! Training of a layer stack (placeholder filled below).
