@@ -801,6 +801,9 @@ fn references(order: &[usize], parent: &[usize]) -> Vec<[usize; 4]> {
         } else {
             order[2]
         };
+        // A centre is never a leaf, so the atoms at p = 1 and p = 2 are children of the
+        // root (breadth-first order places all of the root's children first).
+        debug_assert!(p > 2 || j == root);
         refs[p] = [i, j, k, l];
         if first_child[j] == usize::MAX {
             first_child[j] = i;

@@ -611,3 +611,74 @@ fn a_ring_is_parametrised_by_its_spanning_tree() {
     let d = |v: &[f64]| dot(sub(atom(v, a), atom(v, b)), sub(atom(v, a), atom(v, b))).sqrt();
     assert!((d(&x) - d(&y)).abs() < 1e-12);
 }
+
+/// A random tree of `n` atoms (valence at most 4), labels shuffled.
+fn random_tree(n: usize, rng: &mut ChaCha8Rng) -> Vec<(usize, usize)> {
+    let mut degree = vec![0usize; n];
+    let mut label: Vec<usize> = (0..n).collect();
+    for i in (1..n).rev() {
+        label.swap(i, rng.gen_range(0..=i));
+    }
+    let mut bonds = Vec::new();
+    for a in 1..n {
+        let b = loop {
+            let b = rng.gen_range(0..a);
+            if degree[b] < 4 {
+                break b;
+            }
+        };
+        degree[a] += 1;
+        degree[b] += 1;
+        bonds.push((label[a], label[b]));
+    }
+    bonds
+}
+
+#[test]
+fn random_trees_round_trip_internal_coordinates_and_their_vjp() {
+    // Every reference rule (sibling, parent of k, the root's other child) occurs on
+    // random trees; internal -> Cartesian -> internal must return q, and the VJP must
+    // match central differences.
+    let mut rng = ChaCha8Rng::seed_from_u64(21);
+    let pi = std::f64::consts::PI;
+    for case in 0..30 {
+        let n = rng.gen_range(3..14);
+        let z = ZMatrix::from_bonds(n, &random_tree(n, &mut rng)).unwrap();
+        let m = z.n_internal();
+        let q: Vec<f64> = (0..m)
+            .map(|i| match z.kind(i).unwrap() {
+                CoordinateKind::Bond => rng.gen_range(0.9..1.6),
+                CoordinateKind::Angle => rng.gen_range(0.5..2.6),
+                CoordinateKind::Torsion => rng.gen_range(-pi..pi),
+            })
+            .collect();
+        let mut x = vec![0.0; 3 * n];
+        let ld = z.to_cartesian(&q, &mut x).unwrap();
+        let mut q2 = vec![0.0; m];
+        let back = z.to_internal(&x, &mut q2).unwrap();
+        assert!(
+            max_abs_diff(&q, &q2) < 1e-10,
+            "case {case}: {q:?} vs {q2:?}"
+        );
+        assert!((ld + back.log_det).abs() < 1e-12);
+        let g_x: Vec<f64> = (0..3 * n).map(|_| rng.gen_range(-1.0..1.0)).collect();
+        let mut g_q = vec![0.0; m];
+        z.to_cartesian_vjp(&q, &g_x, -0.3, &mut g_q).unwrap();
+        let loss = |q: &[f64]| {
+            let mut x = vec![0.0; 3 * n];
+            let ld = z.to_cartesian(q, &mut x).unwrap();
+            dot_slices(&g_x, &x) - 0.3 * ld
+        };
+        for c in 0..m {
+            let (mut qp, mut qm) = (q.clone(), q.clone());
+            qp[c] += 1e-6;
+            qm[c] -= 1e-6;
+            let fd = (loss(&qp) - loss(&qm)) / 2e-6;
+            assert!(
+                (fd - g_q[c]).abs() < 1e-6 * (1.0 + fd.abs()),
+                "case {case}, coordinate {c}: {fd} vs {}",
+                g_q[c]
+            );
+        }
+    }
+}
