@@ -10,6 +10,7 @@ pub mod bench;
 mod flow;
 mod frame;
 mod fused;
+pub mod internal;
 mod io;
 mod real;
 mod sample;
