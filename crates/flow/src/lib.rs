@@ -14,6 +14,7 @@ mod io;
 mod real;
 mod sample;
 mod spec;
+pub mod spline;
 mod tape;
 mod team;
 mod train;
