@@ -16,6 +16,7 @@ mod real;
 mod sample;
 mod spec;
 pub mod stack;
+pub mod spline;
 mod tape;
 mod team;
 mod train;
