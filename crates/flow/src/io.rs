@@ -38,7 +38,7 @@ fn bad(m: impl Into<String>) -> FlowError {
     FlowError::Format(m.into())
 }
 
-fn real_bytes<T: Real>(v: &[T]) -> Vec<u8> {
+pub(crate) fn real_bytes<T: Real>(v: &[T]) -> Vec<u8> {
     let mut out = Vec::with_capacity(std::mem::size_of_val(v));
     for &x in v {
         if T::DTYPE_NAME == "F32" {
@@ -235,7 +235,7 @@ impl<T: Real> Flow<T> {
 /// in that order, the header's keys in that order (the crate's own serialiser takes the
 /// metadata as a `HashMap`, whose random order would make equal flows differ in bytes),
 /// and the header padded with spaces to a multiple of 8 bytes.
-fn write_safetensors(
+pub(crate) fn write_safetensors(
     mut tensors: Vec<(String, Dtype, Vec<usize>, Vec<u8>)>,
     meta: &[(&str, String)],
 ) -> Vec<u8> {
@@ -312,7 +312,7 @@ fn tensor<'a>(
     Ok(t)
 }
 
-fn read_index(
+pub(crate) fn read_index(
     st: &SafeTensors<'_>,
     name: &str,
     len: usize,
@@ -340,7 +340,7 @@ fn read_index(
         .collect()
 }
 
-fn read_real<T: Real>(
+pub(crate) fn read_real<T: Real>(
     st: &SafeTensors<'_>,
     name: &str,
     shape: &[usize],

@@ -16,7 +16,9 @@
 //! touch: files, the store, processes.
 
 mod coupling;
+pub mod io;
 mod net;
+pub mod sample;
 pub mod train;
 
 use crate::real::Real;
@@ -254,17 +256,23 @@ pub struct StackTape<T> {
 impl<T: Real> StackFlow<T> {
     /// A new flow: hidden weights drawn from `seed`, output layers zero (the identity).
     pub fn new(spec: StackSpec, seed: u64) -> Result<Self, FlowError> {
+        let mut flow = Self::new_zeroed(spec)?;
+        let mut rng = ChaCha8Rng::seed_from_u64(seed);
+        for (k, l) in flow.layers.iter().enumerate() {
+            let (a, b) = (flow.offsets[k], flow.offsets[k + 1]);
+            l.net.init(&mut rng, &mut flow.params[a..b]);
+        }
+        Ok(flow)
+    }
+
+    /// The architecture with every parameter zero.
+    fn new_zeroed(spec: StackSpec) -> Result<Self, FlowError> {
         let layers = spec.build()?;
         let mut offsets = vec![0];
         for l in &layers {
             offsets.push(offsets.last().unwrap() + l.n_params());
         }
-        let mut params = vec![T::zero(); *offsets.last().unwrap()];
-        let mut rng = ChaCha8Rng::seed_from_u64(seed);
-        for (k, l) in layers.iter().enumerate() {
-            l.net
-                .init(&mut rng, &mut params[offsets[k]..offsets[k + 1]]);
-        }
+        let params = vec![T::zero(); *offsets.last().unwrap()];
         Ok(StackFlow {
             spec,
             layers,

@@ -9,7 +9,7 @@
 //!
 //! Parameter layout per linear layer l: W [n_in · patch, n_out] row-major, then b [n_out].
 
-use crate::real::{matmul, Real};
+use crate::real::{matmul, multiversion, Real};
 use crate::spec::Activation;
 use rand::Rng;
 use rand_chacha::ChaCha8Rng;
@@ -35,6 +35,12 @@ impl NetShape {
     /// Sites per configuration (1 for a dense network).
     pub fn sites(&self) -> usize {
         self.conv.map_or(1, |(l, _)| l * l)
+    }
+
+    /// (rows, columns) of every linear layer's weight matrix.
+    pub fn linear_shapes(&self) -> Vec<(usize, usize)> {
+        let p = self.patch();
+        self.sizes.windows(2).map(|w| (w[0] * p, w[1])).collect()
     }
 
     /// Number of parameters.
@@ -100,26 +106,38 @@ impl<T: Real> NetTape<T> {
     }
 }
 
+/// For every site of a side×side periodic lattice, the sites of its kernel×kernel
+/// neighbourhood (row offsets outer, column offsets inner).
+fn neighbour_table(side: usize, k: usize) -> Vec<usize> {
+    let h = (k / 2) as isize;
+    let mut t = Vec::with_capacity(side * side * k * k);
+    for r in 0..side {
+        for col in 0..side {
+            for dr in -h..=h {
+                let rr = (r as isize + dr).rem_euclid(side as isize) as usize;
+                for dc in -h..=h {
+                    let cc = (col as isize + dc).rem_euclid(side as isize) as usize;
+                    t.push(rr * side + cc);
+                }
+            }
+        }
+    }
+    t
+}
+
 /// Gathers the kernel×kernel periodic neighbourhood of every site: `src` is
 /// [n × side², c] (site-major, channels last), `dst` [n × side², k² c].
 fn gather_patches<T: Real>(src: &[T], n: usize, side: usize, k: usize, c: usize, dst: &mut [T]) {
     let s = side * side;
-    let h = (k / 2) as isize;
-    let pc = k * k * c;
+    let kk = k * k;
+    let table = neighbour_table(side, k);
     for i in 0..n {
-        for r in 0..side {
-            for col in 0..side {
-                let row_out = (i * s + r * side + col) * pc;
-                let mut q = 0;
-                for dr in -h..=h {
-                    let rr = (r as isize + dr).rem_euclid(side as isize) as usize;
-                    for dc in -h..=h {
-                        let cc = (col as isize + dc).rem_euclid(side as isize) as usize;
-                        let from = (i * s + rr * side + cc) * c;
-                        dst[row_out + q * c..row_out + (q + 1) * c]
-                            .copy_from_slice(&src[from..from + c]);
-                        q += 1;
-                    }
+        let src_i = &src[i * s * c..(i + 1) * s * c];
+        let dst_i = &mut dst[i * s * kk * c..(i + 1) * s * kk * c];
+        for (patch, nbrs) in dst_i.chunks_exact_mut(kk * c).zip(table.chunks_exact(kk)) {
+            for (out, &j) in patch.chunks_exact_mut(c).zip(nbrs) {
+                for (o, &v) in out.iter_mut().zip(&src_i[j * c..(j + 1) * c]) {
+                    *o = v;
                 }
             }
         }
@@ -136,55 +154,74 @@ fn scatter_patches<T: Real>(
     dst: &mut [T],
 ) {
     let s = side * side;
-    let h = (k / 2) as isize;
-    let pc = k * k * c;
+    let kk = k * k;
+    let table = neighbour_table(side, k);
     dst[..n * s * c].fill(T::zero());
     for i in 0..n {
-        for r in 0..side {
-            for col in 0..side {
-                let row_in = (i * s + r * side + col) * pc;
-                let mut q = 0;
-                for dr in -h..=h {
-                    let rr = (r as isize + dr).rem_euclid(side as isize) as usize;
-                    for dc in -h..=h {
-                        let cc = (col as isize + dc).rem_euclid(side as isize) as usize;
-                        let to = (i * s + rr * side + cc) * c;
-                        for ch in 0..c {
-                            dst[to + ch] += g_patch[row_in + q * c + ch];
-                        }
-                        q += 1;
-                    }
+        let dst_i = &mut dst[i * s * c..(i + 1) * s * c];
+        let g_i = &g_patch[i * s * kk * c..(i + 1) * s * kk * c];
+        for (patch, nbrs) in g_i.chunks_exact(kk * c).zip(table.chunks_exact(kk)) {
+            for (gv, &j) in patch.chunks_exact(c).zip(nbrs) {
+                for (o, &v) in dst_i[j * c..(j + 1) * c].iter_mut().zip(gv) {
+                    *o += v;
                 }
             }
         }
     }
 }
 
-#[inline(always)]
-fn act<T: Real>(a: Activation, x: T) -> T {
-    match a {
-        Activation::Tanh => x.tanh(),
-        Activation::Silu => x / (T::one() + (-x).exp()),
-        Activation::Relu => x.max(T::zero()),
-    }
+multiversion! {
+    /// post = act(pre), element-wise.
+    fn act_slice<T>(a: Activation, pre: &[T], post: &mut [T]) = act_slice_k;
 }
 
 #[inline(always)]
-fn act_grad<T: Real>(a: Activation, x: T) -> T {
+fn act_slice_k<T: Real>(a: Activation, pre: &[T], post: &mut [T]) {
+    let (one, two) = (T::one(), T::one() + T::one());
     match a {
         Activation::Tanh => {
-            let t = x.tanh();
-            T::one() - t * t
+            for (y, &x) in post.iter_mut().zip(pre) {
+                *y = one - two / (one + (two * x).fexp());
+            }
         }
         Activation::Silu => {
-            let s = T::one() / (T::one() + (-x).exp());
-            s + x * s * (T::one() - s)
+            for (y, &x) in post.iter_mut().zip(pre) {
+                *y = x / (one + (-x).fexp());
+            }
         }
         Activation::Relu => {
-            if x > T::zero() {
-                T::one()
-            } else {
-                T::zero()
+            for (y, &x) in post.iter_mut().zip(pre) {
+                *y = x.max(T::zero());
+            }
+        }
+    }
+}
+
+multiversion! {
+    /// g *= act'(pre), with post = act(pre).
+    fn act_grad_slice<T>(a: Activation, pre: &[T], post: &[T], g: &mut [T]) = act_grad_slice_k;
+}
+
+#[inline(always)]
+fn act_grad_slice_k<T: Real>(a: Activation, pre: &[T], post: &[T], g: &mut [T]) {
+    let one = T::one();
+    match a {
+        Activation::Tanh => {
+            for (g, &h) in g.iter_mut().zip(post) {
+                *g *= one - h * h;
+            }
+        }
+        Activation::Silu => {
+            for ((g, &x), &h) in g.iter_mut().zip(pre).zip(post) {
+                let s = one / (one + (-x).fexp());
+                *g *= s + h * (one - s);
+            }
+        }
+        Activation::Relu => {
+            for (g, &x) in g.iter_mut().zip(pre) {
+                if x <= T::zero() {
+                    *g = T::zero();
+                }
             }
         }
     }
@@ -227,9 +264,7 @@ pub(crate) fn forward<T: Real>(shape: &NetShape, params: &[T], rows: usize, tape
             let pre = &mut tape.pre[l];
             pre.resize(m * co, T::zero());
             pre.copy_from_slice(&dst[..m * co]);
-            for v in dst.iter_mut() {
-                *v = act(shape.activation, *v);
-            }
+            act_slice(shape.activation, pre, dst);
         }
     }
 }
@@ -264,9 +299,7 @@ pub(crate) fn backward<T: Real>(
         let (ci, co) = (shape.sizes[l], shape.sizes[l + 1]);
         let kin = ci * p;
         if l + 1 < n_lin {
-            for (gv, &x) in g.iter_mut().zip(&tape.pre[l]) {
-                *gv *= act_grad(shape.activation, x);
-            }
+            act_grad_slice(shape.activation, &tape.pre[l], &tape.post[l + 1], &mut g);
         }
         let o = offs[l];
         let w = &params[o..o + kin * co];

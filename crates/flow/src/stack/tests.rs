@@ -286,3 +286,55 @@ fn new_flow_is_the_identity_and_bad_specs_are_refused() {
     let e = StackFlow::<f64>::new(bad, 1).unwrap_err().to_string();
     assert!(e.contains("kernel must be odd"), "{e}");
 }
+
+#[test]
+fn weight_file_round_trips_and_refuses_unknown_layers_and_damage() {
+    for spec in specs() {
+        let f = random_flow(spec, 41);
+        let bytes = f.to_safetensors().unwrap();
+        assert_eq!(
+            bytes,
+            f.to_safetensors().unwrap(),
+            "bytes are deterministic"
+        );
+        let g = StackFlow::<f64>::from_safetensors(&bytes).unwrap();
+        let x = random_rows(3, f.dim(), 2);
+        let (a, b) = (
+            f.log_prob(&x, 1.0, &mut StackTape::default()),
+            g.log_prob(&x, 1.0, &mut StackTape::default()),
+        );
+        assert_eq!(a, b);
+        // An f32 reader of an f64 file agrees to f32 precision.
+        let h = StackFlow::<f32>::from_safetensors(&bytes).unwrap();
+        let c = h.log_prob(&x, 1.0, &mut StackTape::default());
+        for (u, v) in a.iter().zip(&c) {
+            assert!((u - v).abs() < 1e-4 * (1.0 + u.abs()), "{u} vs {v}");
+        }
+        // Truncated files and flipped header bytes are refused, never a panic.
+        for cut in [8, bytes.len() / 2, bytes.len() - 1] {
+            assert!(StackFlow::<f32>::from_safetensors(&bytes[..cut]).is_err());
+        }
+    }
+    // A layer kind this build does not know: refused, naming the layer.
+    let f = random_flow(lattice_spec(4, TransformKind::Affine), 1);
+    let bytes = f.to_safetensors().unwrap();
+    let n = u64::from_le_bytes(bytes[..8].try_into().unwrap()) as usize;
+    let header = String::from_utf8(bytes[8..8 + n].to_vec()).unwrap();
+    let renamed = header.replace("checkerboard", "hexagonal");
+    let mut hb = renamed.into_bytes();
+    while hb.len() % 8 != 0 {
+        hb.push(b' ');
+    }
+    let mut out = (hb.len() as u64).to_le_bytes().to_vec();
+    out.extend(hb);
+    out.extend(&bytes[8 + n..]);
+    let e = StackFlow::<f32>::from_safetensors(&out)
+        .unwrap_err()
+        .to_string();
+    assert!(e.contains("layers[0]") && e.contains("hexagonal"), "{e}");
+    // The RealNVP reader refuses a stack file by its format name.
+    let e = crate::Flow::<f32>::from_safetensors(&bytes)
+        .unwrap_err()
+        .to_string();
+    assert!(e.contains("tarn-flow-stack"), "{e}");
+}

@@ -1,0 +1,199 @@
+//! The layer stack's weight file: safetensors with `format` = "tarn-flow-stack",
+//! `format_version` = "1", `architecture` = the [`StackSpec`] as JSON, and per layer k:
+//!
+//! - `layer.{k}.cond_index`, `layer.{k}.trans_index` (I64): the coordinates (lattice
+//!   sites, row-major) that condition and that are transformed;
+//! - `layer.{k}.net.{l}.weight` ([n_in · patch, n_out]) and `.bias` ([n_out]): linear
+//!   layer l of the conditioner. For a dense conditioner the input row is x[cond_index]
+//!   and patch = 1. For a convolution (checkerboard layers) every site's input is its
+//!   kernel×kernel periodic neighbourhood, row offsets −h..h outer, column offsets inner,
+//!   channels innermost, of a map whose first channel is x on the conditioning sites and
+//!   0 elsewhere. Hidden layers apply the activation; the last gives the element-wise
+//!   map's parameters per transformed coordinate (dense: [|B|, P] row-major; convolution:
+//!   P channels at each transformed site).
+//!
+//! Reading checks the format, version and architecture (naming the layer whose kind is
+//! unknown), bounds sizes by the file's length before allocating, and checks every
+//! tensor's presence, dtype, shape and finiteness, the index sets against the
+//! architecture, and that there are no extra tensors.
+
+use super::{LayerSpec, StackFlow, StackSpec};
+use crate::io::{read_index, read_real, real_bytes, write_safetensors};
+use crate::real::Real;
+use crate::FlowError;
+use safetensors::tensor::{Dtype, SafeTensors};
+
+/// The value of the `format` metadata key of a layer-stack weight file.
+pub const STACK_FORMAT_NAME: &str = "tarn-flow-stack";
+/// The `format_version` this build writes and reads.
+pub const STACK_FORMAT_VERSION: &str = "1";
+
+const CONVENTION: &str = "generative direction z -> x, layer 0 first: per layer, \
+x[trans] = g(z[trans]; theta) with theta = conditioner(z[cond]); affine: g = z * exp(s) + t, \
+s = clamp * tanh(raw / clamp), (raw, t) = theta; latent z ~ N(0, tau I)";
+
+fn bad(m: impl Into<String>) -> FlowError {
+    FlowError::Format(m.into())
+}
+
+/// Parses the `architecture` metadata, naming the layer entry that cannot be read.
+pub(crate) fn parse_architecture(text: &str) -> Result<StackSpec, FlowError> {
+    let v: serde_json::Value =
+        serde_json::from_str(text).map_err(|e| bad(format!("metadata `architecture`: {e}")))?;
+    if let Some(layers) = v.get("layers").and_then(|l| l.as_array()) {
+        for (i, l) in layers.iter().enumerate() {
+            serde_json::from_value::<LayerSpec>(l.clone()).map_err(|e| {
+                bad(format!(
+                    "metadata `architecture`: layers[{i}] (kind {}): {e}; this build knows the layer kinds `coupling` and `checkerboard` and the transforms `affine` and `spline`",
+                    l.get("kind").map_or("missing".to_string(), |k| k.to_string())
+                ))
+            })?;
+        }
+    }
+    serde_json::from_value(v).map_err(|e| bad(format!("metadata `architecture`: {e}")))
+}
+
+impl<T: Real> StackFlow<T> {
+    /// The flow as a safetensors byte string (tensors in this flow's precision).
+    pub fn to_safetensors(&self) -> Result<Vec<u8>, FlowError> {
+        let dtype = if T::DTYPE_NAME == "F32" {
+            Dtype::F32
+        } else {
+            Dtype::F64
+        };
+        let idx = |v: &[usize]| {
+            v.iter()
+                .flat_map(|&i| (i as i64).to_le_bytes())
+                .collect::<Vec<u8>>()
+        };
+        let mut owned = Vec::new();
+        for (k, layer) in self.layers.iter().enumerate() {
+            owned.push((
+                format!("layer.{k}.cond_index"),
+                Dtype::I64,
+                vec![layer.cond_idx.len()],
+                idx(&layer.cond_idx),
+            ));
+            owned.push((
+                format!("layer.{k}.trans_index"),
+                Dtype::I64,
+                vec![layer.trans_idx.len()],
+                idx(&layer.trans_idx),
+            ));
+            let mut off = self.offsets[k];
+            for (l, (n_in, n_out)) in layer.net.linear_shapes().into_iter().enumerate() {
+                owned.push((
+                    format!("layer.{k}.net.{l}.weight"),
+                    dtype,
+                    vec![n_in, n_out],
+                    real_bytes(&self.params[off..off + n_in * n_out]),
+                ));
+                off += n_in * n_out;
+                owned.push((
+                    format!("layer.{k}.net.{l}.bias"),
+                    dtype,
+                    vec![n_out],
+                    real_bytes(&self.params[off..off + n_out]),
+                ));
+                off += n_out;
+            }
+        }
+        let arch = serde_json::to_string(&self.spec).map_err(|e| bad(e.to_string()))?;
+        let meta = [
+            ("format", STACK_FORMAT_NAME.to_string()),
+            ("format_version", STACK_FORMAT_VERSION.to_string()),
+            ("architecture", arch),
+            ("convention", CONVENTION.to_string()),
+        ];
+        Ok(write_safetensors(owned, &meta))
+    }
+
+    /// Reads a flow written by [`StackFlow::to_safetensors`] (either precision).
+    pub fn from_safetensors(bytes: &[u8]) -> Result<Self, FlowError> {
+        let st = SafeTensors::deserialize(bytes)
+            .map_err(|e| bad(format!("not a safetensors file: {e}")))?;
+        let (_, header) = SafeTensors::read_metadata(bytes)
+            .map_err(|e| bad(format!("unreadable header: {e}")))?;
+        let meta = header
+            .metadata()
+            .as_ref()
+            .ok_or_else(|| bad("no __metadata__ in the header"))?;
+        let get = |k: &str| {
+            meta.get(k)
+                .ok_or_else(|| bad(format!("metadata key `{k}` is missing")))
+        };
+        if get("format")? != STACK_FORMAT_NAME {
+            return Err(bad(format!(
+                "metadata `format` is `{}`, not `{STACK_FORMAT_NAME}`",
+                get("format")?
+            )));
+        }
+        if get("format_version")? != STACK_FORMAT_VERSION {
+            return Err(bad(format!(
+                "format_version `{}` is not supported (this build reads `{STACK_FORMAT_VERSION}`)",
+                get("format_version")?
+            )));
+        }
+        let spec = parse_architecture(get("architecture")?)?;
+        // Index tensors alone take 8 bytes per coordinate per layer.
+        let layer_count: u128 = spec.layers.iter().map(|l| l.repeat as u128).sum();
+        if (spec.data_dim as u128) * 8 * layer_count.max(1) > bytes.len() as u128 {
+            return Err(bad(format!(
+                "architecture has {} coordinates in {layer_count} layers, more than a file of {} bytes can hold",
+                spec.data_dim,
+                bytes.len()
+            )));
+        }
+        let shell = StackFlow::<T>::new_zeroed(spec)
+            .map_err(|e| bad(format!("metadata `architecture`: {e}")))?;
+        if shell.params.len() as u128 * 4 > bytes.len() as u128 {
+            return Err(bad(format!(
+                "architecture needs {} parameters, more than a file of {} bytes can hold",
+                shell.params.len(),
+                bytes.len()
+            )));
+        }
+        let mut flow = shell;
+        let mut expected = 0usize;
+        let d = flow.dim();
+        for k in 0..flow.layers.len() {
+            let layer = &flow.layers[k];
+            let cond = read_index(
+                &st,
+                &format!("layer.{k}.cond_index"),
+                layer.cond_idx.len(),
+                d,
+            )?;
+            let trans = read_index(
+                &st,
+                &format!("layer.{k}.trans_index"),
+                layer.trans_idx.len(),
+                d,
+            )?;
+            if cond != layer.cond_idx || trans != layer.trans_idx {
+                return Err(bad(format!(
+                    "layer.{k}: the index sets differ from those the architecture defines"
+                )));
+            }
+            expected += 2;
+            let mut off = flow.offsets[k];
+            for (l, (n_in, n_out)) in layer.net.linear_shapes().into_iter().enumerate() {
+                let w = read_real::<T>(&st, &format!("layer.{k}.net.{l}.weight"), &[n_in, n_out])?;
+                let b = read_real::<T>(&st, &format!("layer.{k}.net.{l}.bias"), &[n_out])?;
+                flow.params[off..off + w.len()].copy_from_slice(&w);
+                off += w.len();
+                flow.params[off..off + b.len()].copy_from_slice(&b);
+                off += b.len();
+                expected += 2;
+            }
+        }
+        if st.len() != expected {
+            let names: Vec<String> = st.names().into_iter().map(str::to_string).collect();
+            return Err(bad(format!(
+                "file has {} tensors, the architecture has {expected} ({names:?})",
+                st.len()
+            )));
+        }
+        Ok(flow)
+    }
+}
