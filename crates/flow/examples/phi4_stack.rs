@@ -18,12 +18,18 @@ fn main() {
         lattice_side: 8,
         layers: vec![LayerSpec {
             kind: LayerKind::Checkerboard,
-            transform: TransformKind::Affine,
+            transform: if std::env::var("SPLINE").is_ok() {
+                TransformKind::Spline
+            } else {
+                TransformKind::Affine
+            },
             repeat,
             hidden: Some(vec![ch, ch]),
             kernel: 3,
             activation: Activation::Tanh,
             clamp: 3.0,
+            bins: 8,
+            bound: 3.0,
         }],
         permutation_seed: 0,
     };

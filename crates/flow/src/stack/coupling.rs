@@ -9,6 +9,7 @@
 
 use super::net::{self, NetShape, NetTape};
 use crate::real::Real;
+use crate::spline::{self, SplineShape};
 
 /// The element-wise map of a coupling layer.
 #[derive(Debug, Clone, PartialEq)]
@@ -18,6 +19,8 @@ pub(crate) enum Transform {
         /// Bound on |s|.
         clamp: f64,
     },
+    /// A monotonic rational-quadratic spline on [−bound, bound], identity outside.
+    Spline(SplineShape),
 }
 
 impl Transform {
@@ -25,6 +28,7 @@ impl Transform {
     pub fn n_params(&self) -> usize {
         match self {
             Transform::Affine { .. } => 2,
+            Transform::Spline(shape) => shape.n_params(),
         }
     }
 
@@ -40,6 +44,13 @@ impl Transform {
                     ((x - t) * (-s).exp(), -s)
                 } else {
                     (x * s.exp() + t, s)
+                }
+            }
+            Transform::Spline(ref shape) => {
+                if inverse {
+                    spline::inverse(shape, theta, x)
+                } else {
+                    spline::forward(shape, theta, x)
                 }
             }
         }
@@ -75,6 +86,13 @@ impl Transform {
                 g_theta[0] += gs * (T::one() - r * r);
                 g_theta[1] += gt;
                 gx
+            }
+            Transform::Spline(ref shape) => {
+                if inverse {
+                    spline::inverse_backward(shape, theta, x, gy, gl, g_theta)
+                } else {
+                    spline::forward_backward(shape, theta, x, gy, gl, g_theta)
+                }
             }
         }
     }

@@ -23,6 +23,7 @@ pub mod train;
 
 use crate::real::Real;
 use crate::spec::Activation;
+use crate::spline::SplineShape;
 use crate::FlowError;
 use coupling::{Coupling, CouplingTape, Transform};
 use net::NetShape;
@@ -50,6 +51,9 @@ pub enum TransformKind {
     /// y = x e^s + t, |s| < clamp.
     #[default]
     Affine,
+    /// A monotonic rational-quadratic spline with `bins` bins on [−bound, bound] and
+    /// identity tails (Durkan, Bekasov, Murray & Papamakarios, NeurIPS 2019).
+    Spline,
 }
 
 fn one() -> usize {
@@ -60,6 +64,12 @@ fn three() -> usize {
 }
 fn default_clamp() -> f64 {
     3.0
+}
+fn default_bins() -> usize {
+    8
+}
+fn default_bound() -> f64 {
+    4.0
 }
 
 /// One entry of the `layers` list: `repeat` coupling layers of one kind.
@@ -87,6 +97,12 @@ pub struct LayerSpec {
     /// Bound on the affine log-scale.
     #[serde(default = "default_clamp")]
     pub clamp: f64,
+    /// Spline bins, for `transform = "spline"`.
+    #[serde(default = "default_bins")]
+    pub bins: usize,
+    /// Spline interval half-width B, for `transform = "spline"`.
+    #[serde(default = "default_bound")]
+    pub bound: f64,
 }
 
 /// A stack's architecture: what the campaign file's `layers` list and tarn's system
@@ -136,6 +152,15 @@ impl StackSpec {
             }
             let transform = match spec.transform {
                 TransformKind::Affine => Transform::Affine { clamp: spec.clamp },
+                TransformKind::Spline => {
+                    let shape = SplineShape {
+                        bins: spec.bins,
+                        bound: spec.bound,
+                        circular: false,
+                    };
+                    shape.validate().map_err(|e| at(&e))?;
+                    Transform::Spline(shape)
+                }
             };
             let p = transform.n_params();
             let hidden = spec.hidden.clone().unwrap_or_else(|| match spec.kind {

@@ -9,7 +9,7 @@
 //!
 //! Parameter layout per linear layer l: W [n_in · patch, n_out] row-major, then b [n_out].
 
-use crate::real::{matmul, multiversion, Real};
+use crate::real::{matmul_s, multiversion, Real};
 use crate::spec::Activation;
 use rand::Rng;
 use rand_chacha::ChaCha8Rng;
@@ -85,6 +85,8 @@ pub(crate) struct NetTape<T> {
     /// Gradient buffers (scratch).
     g_a: Vec<T>,
     g_b: Vec<T>,
+    /// Scratch of the narrow-product kernels.
+    mm: Vec<T>,
 }
 
 impl<T: Real> NetTape<T> {
@@ -125,6 +127,23 @@ fn neighbour_table(side: usize, k: usize) -> Vec<usize> {
     t
 }
 
+/// `dst.copy_from_slice(src)` for the few channels of one site, in blocks of 8 of
+/// known length so that the compiler inlines them instead of calling memcpy.
+#[inline(always)]
+fn copy_small<T: Real>(dst: &mut [T], src: &[T]) {
+    if dst.len() % 8 == 0 {
+        for (d8, s8) in dst.chunks_exact_mut(8).zip(src.chunks_exact(8)) {
+            let d8: &mut [T; 8] = d8.try_into().expect("chunks of 8");
+            let s8: &[T; 8] = s8.try_into().expect("chunks of 8");
+            *d8 = *s8;
+        }
+    } else {
+        for (d, &s) in dst.iter_mut().zip(src) {
+            *d = s;
+        }
+    }
+}
+
 /// Gathers the kernel×kernel periodic neighbourhood of every site: `src` is
 /// [n × side², c] (site-major, channels last), `dst` [n × side², k² c].
 fn gather_patches<T: Real>(src: &[T], n: usize, side: usize, k: usize, c: usize, dst: &mut [T]) {
@@ -136,9 +155,7 @@ fn gather_patches<T: Real>(src: &[T], n: usize, side: usize, k: usize, c: usize,
         let dst_i = &mut dst[i * s * kk * c..(i + 1) * s * kk * c];
         for (patch, nbrs) in dst_i.chunks_exact_mut(kk * c).zip(table.chunks_exact(kk)) {
             for (out, &j) in patch.chunks_exact_mut(c).zip(nbrs) {
-                for (o, &v) in out.iter_mut().zip(&src_i[j * c..(j + 1) * c]) {
-                    *o = v;
-                }
+                copy_small(out, &src_i[j * c..(j + 1) * c]);
             }
         }
     }
@@ -254,7 +271,7 @@ pub(crate) fn forward<T: Real>(shape: &NetShape, params: &[T], rows: usize, tape
             }
             None => src,
         };
-        matmul(m, co, kin, a, false, w, false, dst, false, 1);
+        matmul_s(m, co, kin, a, false, w, false, dst, false, 1, &mut tape.mm);
         for row in dst.chunks_mut(co) {
             for (v, &bb) in row.iter_mut().zip(b) {
                 *v += bb;
@@ -314,7 +331,7 @@ pub(crate) fn backward<T: Real>(
         };
         // dW += a^T g; db += colsum g.
         let (gw, gb) = g_params[o..o + kin * co + co].split_at_mut(kin * co);
-        matmul(kin, co, m, a, true, &g, false, gw, true, 1);
+        matmul_s(kin, co, m, a, true, &g, false, gw, true, 1, &mut tape.mm);
         for row in g.chunks(co) {
             for (acc, &v) in gb.iter_mut().zip(row) {
                 *acc += v;
@@ -325,13 +342,25 @@ pub(crate) fn backward<T: Real>(
         match shape.conv {
             Some((side, k)) => {
                 tape.patches.resize(m * kin, T::zero());
-                matmul(m, kin, co, &g, false, w, true, &mut tape.patches, false, 1);
+                matmul_s(
+                    m,
+                    kin,
+                    co,
+                    &g,
+                    false,
+                    w,
+                    true,
+                    &mut tape.patches,
+                    false,
+                    1,
+                    &mut tape.mm,
+                );
                 dst.resize(m * ci, T::zero());
                 scatter_patches(&tape.patches, rows, side, k, ci, dst);
             }
             None => {
                 dst.resize(m * ci, T::zero());
-                matmul(m, ci, co, &g, false, w, true, dst, false, 1);
+                matmul_s(m, ci, co, &g, false, w, true, dst, false, 1, &mut tape.mm);
             }
         }
         std::mem::swap(&mut g, &mut g_prev);
