@@ -66,6 +66,11 @@ pub const BUILTIN_KINDS: &[(Role, &str, &str)] = &[
         "fit a RealNVP flow to the pooled samples and the energy",
     ),
     (
+        Role::Retrain,
+        "flow",
+        "fit a flow of stacked coupling layers (params.flow.layers) to the samples and the energy",
+    ),
+    (
         Role::Evaluate,
         "reweight",
         "reweight flow samples: ESS, free energies with error bars",

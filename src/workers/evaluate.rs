@@ -13,13 +13,13 @@ use serde::Deserialize;
 
 use super::states::{assign_by_quench, free_energy_arrays, Matching};
 use super::{rng, Output, Task};
-use crate::flow::{generate, Flow};
+use crate::flow::AnyFlow;
 use crate::physics::cv::CollectiveVariable;
 use crate::physics::{EnergyModel, SystemSpec};
 use crate::protocol::Array;
 use crate::stats::{
     compare_profiles, free_energy_profile, log_partition_estimate, reference_profile,
-    state_free_energies, Alignment, Bins, BootstrapOptions,
+    state_free_energies, weighted_mean, Alignment, Bins, BootstrapOptions,
 };
 
 /// Parameters of the `reweight` kind.
@@ -39,6 +39,74 @@ struct ReweightParams {
     fingerprint: Option<crate::physics::fingerprint::Fingerprint>,
     /// A 1-D free-energy profile along a collective variable (optional).
     profile: Option<ProfileParams>,
+    /// Reweighted expectation values to report (metrics `mean_NAME`, `mean_NAME_err`).
+    observables: Vec<ObservableParams>,
+    /// Whether to assign samples to states by quench and estimate state free energies
+    /// (false: only ESS, ln Z, observables and the profile, at no quench cost).
+    assign_states: bool,
+    /// The effective-sample floor: below it, observables are reported as not estimated
+    /// (metric `not_estimated = 1`), since a mean over a handful of effective samples is
+    /// not an estimate whatever its error bar says.
+    min_ess: f64,
+}
+
+/// `observables = [{ name = "abs_m", cv = { cv = "magnetisation" }, abs = true }]`: the
+/// reweighted mean of scale · (|cv| if abs else cv)^power.
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct ObservableParams {
+    name: String,
+    cv: CollectiveVariable,
+    #[serde(default)]
+    abs: bool,
+    #[serde(default = "one_i32")]
+    power: i32,
+    #[serde(default = "one_f64")]
+    scale: f64,
+}
+
+fn one_i32() -> i32 {
+    1
+}
+fn one_f64() -> f64 {
+    1.0
+}
+
+impl ObservableParams {
+    fn check(&self, dim: usize) -> Result<(), String> {
+        let ok = !self.name.is_empty()
+            && self.name.len() <= 40
+            && self
+                .name
+                .bytes()
+                .all(|b| b.is_ascii_lowercase() || b.is_ascii_digit() || b == b'_');
+        if !ok {
+            return Err(format!(
+                "observables: name `{}` must be 1-40 characters of a-z, 0-9 and _",
+                self.name
+            ));
+        }
+        if !(1..=8).contains(&self.power) || !self.scale.is_finite() {
+            return Err(format!(
+                "observables.{}: power must be 1..=8 and scale finite",
+                self.name
+            ));
+        }
+        self.cv
+            .validate(dim, None)
+            .map_err(|e| format!("observables.{}.cv: {e}", self.name))
+    }
+
+    fn values(&self, xs: &[f64], model: &dyn EnergyModel) -> Result<Vec<f64>, String> {
+        let cv = self
+            .cv
+            .values(xs, model.dim(), model.particle_dims())
+            .map_err(|e| format!("observables.{}.cv: {e}", self.name))?;
+        Ok(cv
+            .into_iter()
+            .map(|v| self.scale * if self.abs { v.abs() } else { v }.powi(self.power))
+            .collect())
+    }
 }
 
 /// `profile = { cv = { cv = "coordinate", index = 0 }, min = -1.5, max = 1.5, bins = 40 }`
@@ -63,6 +131,9 @@ impl Default for ReweightParams {
             fingerprint_tolerance: m.fingerprint_tolerance,
             fingerprint: None,
             profile: None,
+            observables: Vec::new(),
+            assign_states: true,
+            min_ess: 20.0,
         }
     }
 }
@@ -70,6 +141,12 @@ impl Default for ReweightParams {
 /// Checks `reweight` parameters (for `tarn check`).
 pub fn check(params: &serde_json::Value, dim: usize) -> Result<(), String> {
     let p: ReweightParams = super::params_from(params)?;
+    for o in &p.observables {
+        o.check(dim)?;
+    }
+    if !(p.min_ess.is_finite() && p.min_ess >= 1.0) {
+        return Err(format!("min_ess must be at least 1, got {}", p.min_ess));
+    }
     super::states::check_fingerprint(p.fingerprint.as_ref(), dim)
 }
 
@@ -87,17 +164,17 @@ pub fn reweight(task: &Task) -> Result<Output, String> {
         return Ok(out);
     };
     let bytes = std::fs::read(task.dir.join(rel)).map_err(|e| format!("{rel}: {e}"))?;
-    let flow = Flow::<f32>::from_safetensors(&bytes).map_err(|e| format!("{rel}: {e}"))?;
-    let g = generate(
-        &flow,
-        model.as_ref(),
-        p.n_samples,
-        task.file.kt,
-        1.0,
-        task.file.threads as usize,
-        task.file.seed,
-    )
-    .map_err(|e| format!("generate: {e}"))?;
+    let flow = AnyFlow::from_safetensors(&bytes).map_err(|e| format!("{rel}: {e}"))?;
+    let g = flow
+        .generate(
+            model.as_ref(),
+            p.n_samples,
+            task.file.kt,
+            1.0,
+            task.file.threads as usize,
+            task.file.seed,
+        )
+        .map_err(|e| format!("generate: {e}"))?;
     let finite: Vec<usize> = (0..g.log_weight.len())
         .filter(|&i| g.log_weight[i].is_finite())
         .collect();
@@ -105,44 +182,49 @@ pub fn reweight(task: &Task) -> Result<Output, String> {
         .iter()
         .flat_map(|&i| g.x[i * dim..(i + 1) * dim].iter().copied())
         .collect();
-    let matching = Matching {
-        force_tolerance: p.force_tolerance,
-        max_steps: p.max_steps,
-        energy_tolerance: p.energy_tolerance,
-        fingerprint_tolerance: p.fingerprint_tolerance,
-        fingerprint: p.fingerprint.clone(),
-    };
-    let (assigned, quench_evals) =
-        assign_by_quench(&spec, model.as_ref(), &xs, &catalogue, &cat_e, &matching)?;
-    let mut labels = vec![None; g.log_weight.len()];
-    for (j, &i) in finite.iter().enumerate() {
-        labels[i] = assigned[j];
-    }
-    let ids: Vec<u32> = (0..k as u32).collect();
     let opts = BootstrapOptions {
         n_replicates: p.bootstrap,
         ..BootstrapOptions::default()
     };
-    let est = state_free_energies(&g.log_weight, &labels, &ids, &opts, &mut rng(task))
-        .map_err(|e| format!("free energies: {e}"))?;
-    let logz = log_partition_estimate(&g.log_weight).map_err(|e| format!("ln Z: {e}"))?;
-    let (f, ferr) = free_energy_arrays(&est, k);
-    out.energy_evals = g.energy_evaluations + quench_evals;
-    out.arrays.insert("free_energy".into(), f);
-    out.arrays.insert("free_energy_err".into(), ferr);
     let n = g.log_weight.len() as f64;
-    out.metrics.insert("ess".into(), Some(est.ess));
-    out.metrics.insert("ess_fraction".into(), Some(est.ess / n));
+    let logz = log_partition_estimate(&g.log_weight).map_err(|e| format!("ln Z: {e}"))?;
+    out.energy_evals = g.energy_evaluations;
+    out.metrics.insert("ess".into(), Some(logz.ess));
+    out.metrics
+        .insert("ess_fraction".into(), Some(logz.ess / n));
     out.metrics.insert("log_z".into(), Some(logz.log_z));
     out.metrics.insert("log_z_err".into(), logz.log_z_err);
-    out.metrics
-        .insert("unassigned_weight".into(), Some(est.unassigned_population));
-    out.metrics.insert(
-        "reference_state".into(),
-        Some(f64::from(est.reference_state)),
-    );
+    let fin_w: Vec<f64> = finite.iter().map(|&i| g.log_weight[i]).collect();
+    observables(&p, model.as_ref(), &xs, &fin_w, logz.ess, &mut out)?;
+    if p.assign_states {
+        let matching = Matching {
+            force_tolerance: p.force_tolerance,
+            max_steps: p.max_steps,
+            energy_tolerance: p.energy_tolerance,
+            fingerprint_tolerance: p.fingerprint_tolerance,
+            fingerprint: p.fingerprint.clone(),
+        };
+        let (assigned, quench_evals) =
+            assign_by_quench(&spec, model.as_ref(), &xs, &catalogue, &cat_e, &matching)?;
+        let mut labels = vec![None; g.log_weight.len()];
+        for (j, &i) in finite.iter().enumerate() {
+            labels[i] = assigned[j];
+        }
+        let ids: Vec<u32> = (0..k as u32).collect();
+        let est = state_free_energies(&g.log_weight, &labels, &ids, &opts, &mut rng(task))
+            .map_err(|e| format!("free energies: {e}"))?;
+        let (f, ferr) = free_energy_arrays(&est, k);
+        out.energy_evals += quench_evals;
+        out.arrays.insert("free_energy".into(), f);
+        out.arrays.insert("free_energy_err".into(), ferr);
+        out.metrics
+            .insert("unassigned_weight".into(), Some(est.unassigned_population));
+        out.metrics.insert(
+            "reference_state".into(),
+            Some(f64::from(est.reference_state)),
+        );
+    }
     if let Some(pp) = &p.profile {
-        let fin_w: Vec<f64> = finite.iter().map(|&i| g.log_weight[i]).collect();
         profile(
             task,
             &spec,
@@ -155,6 +237,33 @@ pub fn reweight(task: &Task) -> Result<Output, String> {
         )?;
     }
     Ok(out)
+}
+
+/// The reweighted means of the stage's observables with delta-method errors, or, below
+/// the effective-sample floor, `not_estimated = 1` and no means.
+fn observables(
+    p: &ReweightParams,
+    model: &dyn EnergyModel,
+    xs: &[f64],
+    log_w: &[f64],
+    ess: f64,
+    out: &mut Output,
+) -> Result<(), String> {
+    if p.observables.is_empty() {
+        return Ok(());
+    }
+    if ess < p.min_ess {
+        out.metrics.insert("not_estimated".into(), Some(1.0));
+        return Ok(());
+    }
+    for o in &p.observables {
+        let m = weighted_mean(&o.values(xs, model)?, log_w)
+            .map_err(|e| format!("observables.{}: {e}", o.name))?;
+        out.metrics.insert(format!("mean_{}", o.name), Some(m.mean));
+        out.metrics
+            .insert(format!("mean_{}_err", o.name), Some(m.err));
+    }
+    Ok(())
 }
 
 /// The reweighted 1-D profile with bootstrap errors, and for the built-in 2-D models

@@ -10,10 +10,8 @@
 use serde::Deserialize;
 
 use super::{Output, Task};
-use crate::flow::{
-    generate as flow_generate, latent_metropolis, train, Flow, FlowSpec, FrameSpec, LatentMcParams,
-    TrainParams,
-};
+use crate::flow::stack::{train::train as train_stack, StackFlow, StackSpec};
+use crate::flow::{train, AnyFlow, Flow, FlowSpec, FrameSpec, LatentMcParams, TrainParams};
 use crate::physics::SystemSpec;
 use crate::protocol::Array;
 
@@ -54,6 +52,36 @@ fn flow_spec(
     serde_json::from_value(serde_json::Value::Object(t)).map_err(|e| format!("params.flow: {e}"))
 }
 
+/// The layer-stack architecture from a stage's `flow` table that has a `layers` list:
+/// tarn sets the dimension and, for lattice systems, the lattice side.
+fn stack_spec(
+    system: &SystemSpec,
+    dim: usize,
+    table: &serde_json::Map<String, serde_json::Value>,
+) -> Result<StackSpec, String> {
+    for fixed in ["data_dim", "lattice_side"] {
+        if table.contains_key(fixed) {
+            return Err(format!(
+                "params.flow.{fixed} is set by tarn from the system; remove it"
+            ));
+        }
+    }
+    let mut t = table.clone();
+    t.insert("data_dim".into(), dim.into());
+    if let SystemSpec::Phi4 { size, .. } = system {
+        t.insert("lattice_side".into(), (*size).into());
+    }
+    let spec: StackSpec = serde_json::from_value(serde_json::Value::Object(t))
+        .map_err(|e| format!("params.flow: {e}"))?;
+    spec.validate().map_err(|e| format!("params.flow: {e}"))?;
+    Ok(spec)
+}
+
+/// Whether a stage's `flow` table describes a layer stack (it has a `layers` list).
+fn is_stack(table: &serde_json::Map<String, serde_json::Value>) -> bool {
+    table.contains_key("layers")
+}
+
 /// The training settings, with the campaign's kT and the task's thread count.
 fn train_params(
     kt: f64,
@@ -79,9 +107,13 @@ pub fn check_retrain(
     params: &serde_json::Value,
 ) -> Result<(), String> {
     let p: RetrainParams = serde_json::from_value(params.clone()).map_err(|e| e.to_string())?;
-    flow_spec(system, dim, &p.flow)?
-        .validate()
-        .map_err(|e| format!("params.flow: {e}"))?;
+    if is_stack(&p.flow) {
+        stack_spec(system, dim, &p.flow)?;
+    } else {
+        flow_spec(system, dim, &p.flow)?
+            .validate()
+            .map_err(|e| format!("params.flow: {e}"))?;
+    }
     train_params(kt, 1, &p.train)?
         .validate()
         .map_err(|e| format!("params.train: {e}"))
@@ -95,11 +127,11 @@ pub fn check_generate(params: &serde_json::Value) -> Result<(), String> {
 }
 
 /// The task's current flow model, if it was handed one.
-fn current_model(task: &Task) -> Result<Option<Flow<f32>>, String> {
+pub(super) fn current_model(task: &Task) -> Result<Option<AnyFlow>, String> {
     match &task.file.model {
         Some(rel) => {
             let bytes = std::fs::read(task.dir.join(rel)).map_err(|e| format!("{rel}: {e}"))?;
-            Flow::<f32>::from_safetensors(&bytes)
+            AnyFlow::from_safetensors(&bytes)
                 .map(Some)
                 .map_err(|e| format!("{rel}: {e}"))
         }
@@ -114,26 +146,51 @@ pub fn retrain(task: &Task) -> Result<Output, String> {
     let p: RetrainParams = task.params()?;
     let (system, model) = task.model()?;
     let dim = model.dim();
-    let spec = flow_spec(&system, dim, &p.flow)?;
     let tp = train_params(task.file.kt, task.file.threads, &p.train)?;
     let data = task.input("train")?;
     let previous = current_model(task)?;
-    let warm = previous.as_ref().is_some_and(|f| f.spec() == &spec);
-    let mut flow = match previous {
-        Some(f) if warm => f,
-        _ => Flow::<f32>::new(
-            spec,
-            (data.rows() > 0).then_some(&data.data[..]),
-            task.file.seed,
-        )
-        .map_err(|e| e.to_string())?,
-    };
     let energy = (tp.w_kl > 0.0).then_some(model.as_ref());
-    let report = train(&mut flow, &data.data, energy, &tp, task.file.seed)
-        .map_err(|e| format!("training: {e}"))?;
+    let (report, bytes, warm) = if is_stack(&p.flow) {
+        let spec = stack_spec(&system, dim, &p.flow)?;
+        let (mut flow, warm) = match previous {
+            Some(AnyFlow::Stack(f)) if f.spec() == &spec => (f, true),
+            _ => (
+                StackFlow::<f32>::new(spec, task.file.seed).map_err(|e| e.to_string())?,
+                false,
+            ),
+        };
+        let report = train_stack(&mut flow, &data.data, None, energy, &tp, task.file.seed)
+            .map_err(|e| format!("training: {e}"))?;
+        (
+            report,
+            flow.to_safetensors().map_err(|e| e.to_string())?,
+            warm,
+        )
+    } else {
+        let spec = flow_spec(&system, dim, &p.flow)?;
+        let (mut flow, warm) = match previous {
+            Some(AnyFlow::RealNvp(f)) if f.spec() == &spec => (f, true),
+            _ => (
+                Flow::<f32>::new(
+                    spec,
+                    (data.rows() > 0).then_some(&data.data[..]),
+                    task.file.seed,
+                )
+                .map_err(|e| e.to_string())?,
+                false,
+            ),
+        };
+        let report = train(&mut flow, &data.data, energy, &tp, task.file.seed)
+            .map_err(|e| format!("training: {e}"))?;
+        (
+            report,
+            flow.to_safetensors().map_err(|e| e.to_string())?,
+            warm,
+        )
+    };
     let mut out = Output {
         energy_evals: report.energy_evaluations,
-        model: Some(flow.to_safetensors().map_err(|e| e.to_string())?),
+        model: Some(bytes),
         ..Default::default()
     };
     let last = |v: &[f64]| v.last().copied();
@@ -167,15 +224,15 @@ pub fn latent(task: &Task) -> Result<Output, String> {
         return Ok(empty(dim));
     };
     let start = task.input("start")?;
-    let run = latent_metropolis(
-        &flow,
-        model.as_ref(),
-        &p,
-        task.file.kt,
-        Some(&start.data),
-        task.file.seed,
-    )
-    .map_err(|e| format!("latent Metropolis: {e}"))?;
+    let run = flow
+        .latent_metropolis(
+            model.as_ref(),
+            &p,
+            task.file.kt,
+            Some(&start.data),
+            task.file.seed,
+        )
+        .map_err(|e| format!("latent Metropolis: {e}"))?;
     let scale = task.file.kt * p.temperature_factor;
     let n = run.reduced_energy.len();
     let mut out = Output {
@@ -232,16 +289,16 @@ pub fn generate(task: &Task) -> Result<Output, String> {
     let Some(flow) = current_model(task)? else {
         return Ok(empty(dim));
     };
-    let g = flow_generate(
-        &flow,
-        model.as_ref(),
-        p.n_samples,
-        task.file.kt,
-        p.temperature_factor,
-        task.file.threads as usize,
-        task.file.seed,
-    )
-    .map_err(|e| format!("generate: {e}"))?;
+    let g = flow
+        .generate(
+            model.as_ref(),
+            p.n_samples,
+            task.file.kt,
+            p.temperature_factor,
+            task.file.threads as usize,
+            task.file.seed,
+        )
+        .map_err(|e| format!("generate: {e}"))?;
     let scale = task.file.kt * p.temperature_factor;
     let (mut xs, mut es, mut lw) = (Vec::new(), Vec::new(), Vec::new());
     let mut dropped = 0u64;

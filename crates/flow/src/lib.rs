@@ -6,6 +6,7 @@
 
 #![warn(missing_docs)]
 
+mod any;
 pub mod bench;
 mod flow;
 mod frame;
@@ -22,6 +23,7 @@ mod team;
 mod train;
 mod workspace;
 
+pub use any::AnyFlow;
 pub use flow::Flow;
 pub use io::{FORMAT_NAME, FORMAT_VERSION};
 pub use real::{exp_f32, Real};

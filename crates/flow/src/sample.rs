@@ -199,12 +199,72 @@ pub fn latent_metropolis<T: Real>(
     seed: u64,
 ) -> Result<LatentMcResult, FlowError> {
     params.validate()?;
+    let mut map = RealNvpMap {
+        ws: Workspace::new(flow, params.n_chains, params.threads, Threading::Auto)?,
+        flow,
+    };
+    latent_chain(&mut map, energy, params, kt, start, seed)
+}
+
+/// What latent Metropolis needs of a flow: the two directions of its map, the
+/// generative one with energies and log|det ∂f/∂z|.
+pub(crate) trait LatentMap<T: Real> {
+    /// (latent dimension, data dimension).
+    fn dims(&self) -> (usize, usize);
+    /// z = f⁻¹(x) for the rows of `x`.
+    fn to_latent(&mut self, x: &[T], z: &mut [T]) -> Result<(), FlowError>;
+    /// x = f(z), log|det ∂f/∂z| and the energies of the rows of `z`.
+    fn to_data(
+        &mut self,
+        z: &[T],
+        energy: &dyn EnergyModel,
+        x: &mut [f64],
+        log_det: &mut [f64],
+        e: &mut [f64],
+    ) -> Result<(), FlowError>;
+}
+
+struct RealNvpMap<'a, T: Real> {
+    ws: Workspace<T>,
+    flow: &'a Flow<T>,
+}
+
+impl<T: Real> LatentMap<T> for RealNvpMap<'_, T> {
+    fn dims(&self) -> (usize, usize) {
+        (self.flow.dim(), self.flow.data_dim())
+    }
+    fn to_latent(&mut self, x: &[T], z: &mut [T]) -> Result<(), FlowError> {
+        let mut ld = vec![0.0; x.len() / self.flow.data_dim()];
+        self.ws.invert(self.flow, x, z, &mut ld)
+    }
+    fn to_data(
+        &mut self,
+        z: &[T],
+        energy: &dyn EnergyModel,
+        x: &mut [f64],
+        log_det: &mut [f64],
+        e: &mut [f64],
+    ) -> Result<(), FlowError> {
+        self.ws
+            .generate_with_energy(self.flow, z, energy, x, log_det, e)
+    }
+}
+
+/// The latent Metropolis chain over any [`LatentMap`] (see [`latent_metropolis`]).
+pub(crate) fn latent_chain<T: Real>(
+    map: &mut dyn LatentMap<T>,
+    energy: &dyn EnergyModel,
+    params: &LatentMcParams,
+    kt: f64,
+    start: Option<&[f64]>,
+    seed: u64,
+) -> Result<LatentMcResult, FlowError> {
+    params.validate()?;
     if !(kt.is_finite() && kt > 0.0) {
         return Err(FlowError::Params(format!("kt must be > 0, got {kt}")));
     }
-    let (d, dx, nc) = (flow.dim(), flow.data_dim(), params.n_chains);
+    let ((d, dx), nc) = (map.dims(), params.n_chains);
     let beta = 1.0 / (kt * params.temperature_factor);
-    let mut ws = Workspace::new(flow, nc, params.threads, Threading::Auto)?;
     let mut rng = ChaCha8Rng::seed_from_u64(seed);
     let mut z = vec![T::zero(); nc * d];
     match start {
@@ -223,13 +283,12 @@ pub fn latent_metropolis<T: Real>(
                         .map(|&v| T::of(v))
                 })
                 .collect();
-            let mut ld = vec![0.0; nc];
-            ws.invert(flow, &s_t, &mut z, &mut ld)?;
+            map.to_latent(&s_t, &mut z)?;
         }
         None => draw_latent(&mut rng, params.temperature_factor, &mut z),
     }
     let (mut x, mut ld, mut e) = (vec![0.0; nc * dx], vec![0.0; nc], vec![0.0; nc]);
-    ws.generate_with_energy(flow, &z, energy, &mut x, &mut ld, &mut e)?;
+    map.to_data(&z, energy, &mut x, &mut ld, &mut e)?;
     let mut u: Vec<f64> = e.iter().map(|v| v * beta).collect();
     if let Some(c) = u.iter().position(|v| !v.is_finite()) {
         return Err(FlowError::Params(format!(
@@ -247,7 +306,7 @@ pub fn latent_metropolis<T: Real>(
         for (p, &c) in zp.iter_mut().zip(&z) {
             *p = c + T::of(sigma * rng.sample::<f64, _>(rand_distr::StandardNormal));
         }
-        ws.generate_with_energy(flow, &zp, energy, &mut xp, &mut ldp, &mut ep)?;
+        map.to_data(&zp, energy, &mut xp, &mut ldp, &mut ep)?;
         out.energy_evaluations += nc as u64;
         let mut accepted = 0u64;
         for c in 0..nc {

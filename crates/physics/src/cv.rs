@@ -69,6 +69,8 @@ pub enum CollectiveVariable {
     },
     /// Magnetisation (mean field) (1/V) Σ_x φ_x, for φ⁴.
     Magnetisation {},
+    /// Mean square of the coordinates (1/D) Σ_i x_i² (for φ⁴, the site average of φ²).
+    MeanSquare {},
     /// Dihedral angle i–j–k–l of atoms in 3-D, in degrees in [−180, 180).
     Dihedral {
         /// First atom.
@@ -96,6 +98,7 @@ impl CollectiveVariable {
             CollectiveVariable::RadiusOfGyration { .. } => "radius-of-gyration".to_string(),
             CollectiveVariable::Coordination { .. } => "coordination".to_string(),
             CollectiveVariable::Magnetisation {} => "magnetisation".to_string(),
+            CollectiveVariable::MeanSquare {} => "mean-square".to_string(),
             CollectiveVariable::Dihedral { i, j, k, l } => format!("dihedral({i},{j},{k},{l})"),
         }
     }
@@ -174,7 +177,7 @@ impl CollectiveVariable {
                 require(n >= 2, "dims", "needs at least two particles")?;
                 require(r0.is_finite() && *r0 > 0.0, "r0", "must be positive")
             }
-            CollectiveVariable::Magnetisation {} => Ok(()),
+            CollectiveVariable::Magnetisation {} | CollectiveVariable::MeanSquare {} => Ok(()),
             CollectiveVariable::Dihedral { i, j, k, l } => {
                 validate_dihedral([*i, *j, *k, *l], dim, "i")
             }
@@ -235,6 +238,13 @@ impl CollectiveVariable {
                 let v = x.len() as f64;
                 grad.iter_mut().for_each(|g| *g = 1.0 / v);
                 x.iter().sum::<f64>() / v
+            }
+            CollectiveVariable::MeanSquare {} => {
+                let v = x.len() as f64;
+                grad.iter_mut()
+                    .zip(x)
+                    .for_each(|(g, &xi)| *g = 2.0 * xi / v);
+                x.iter().map(|xi| xi * xi).sum::<f64>() / v
             }
             CollectiveVariable::Dihedral { i, j, k, l } => {
                 dihedral_and_gradient(x, [*i, *j, *k, *l], grad)

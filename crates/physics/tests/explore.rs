@@ -399,6 +399,7 @@ proptest! {
             CollectiveVariable::RadiusOfGyration { dims: None },
             CollectiveVariable::Coordination { r0: 1.5, dims: None },
             CollectiveVariable::Magnetisation {},
+            CollectiveVariable::MeanSquare {},
         ];
         for pd in [Some(2), Some(3)] {
             for cv in &cvs {
@@ -420,6 +421,9 @@ fn cv_values_are_what_they_say() {
     assert!((d.value(&x, None) - 5.0).abs() < 1e-15);
     let rg = CollectiveVariable::RadiusOfGyration { dims: Some(2) };
     assert!((rg.value(&x, None) - 2.5).abs() < 1e-15);
+    // (0 + 0 + 9 + 16) / 4.
+    let ms = CollectiveVariable::MeanSquare {};
+    assert!((ms.value(&x, None) - 6.25).abs() < 1e-15);
     // Two particles at r0: each has s = 1/2, mean coordination (2/N)·(1/2) = 1/2.
     let c = CollectiveVariable::Coordination {
         r0: 5.0,

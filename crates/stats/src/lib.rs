@@ -22,7 +22,7 @@ pub use bootstrap::{
 pub use error::{Result, StatsError};
 pub use logspace::{
     ess_fraction, importance_log_weights, kish_ess, log_partition_estimate, logsumexp,
-    normalised_log_weights, LogZEstimate,
+    normalised_log_weights, weighted_mean, LogZEstimate, WeightedMean,
 };
 pub use mbar::{Expectations, FreeEnergyDifferences, Mbar, MbarOptions};
 pub use metad::{

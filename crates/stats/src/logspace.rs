@@ -123,6 +123,47 @@ pub fn log_partition_estimate(log_w: &[f64]) -> Result<LogZEstimate> {
     })
 }
 
+/// A self-normalised importance-sampling estimate of an expectation.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct WeightedMean {
+    /// Σ w_i a_i / Σ w_i.
+    pub mean: f64,
+    /// One standard error by the delta method: sqrt(Σ w̃_i² (a_i − mean)²) with the
+    /// normalised weights w̃ (for equal weights, the sample standard deviation over √N).
+    pub err: f64,
+    /// The Kish effective sample size of the weights.
+    pub ess: f64,
+}
+
+/// The reweighted mean of `values` under importance log weights `log_w`, with its
+/// delta-method standard error (Owen, Monte Carlo theory, methods and examples, 2013,
+/// ch. 9: the variance of the ratio estimator). Like every asymptotic error bar it is
+/// optimistic when the ESS is a handful of samples: report the ESS beside it.
+pub fn weighted_mean(values: &[f64], log_w: &[f64]) -> Result<WeightedMean> {
+    let w = normalised_log_weights(log_w)?;
+    if values.len() != log_w.len() {
+        return Err(StatsError::LengthMismatch {
+            left: "values",
+            left_len: values.len(),
+            right: "log_w",
+            right_len: log_w.len(),
+        });
+    }
+    crate::error::check_finite("values", values)?;
+    let w: Vec<f64> = w.iter().map(|l| l.exp()).collect();
+    let mean: f64 = w.iter().zip(values).map(|(w, a)| w * a).sum();
+    let var: f64 = w
+        .iter()
+        .zip(values)
+        .map(|(w, a)| w * w * (a - mean).powi(2))
+        .sum();
+    Ok(WeightedMean {
+        mean,
+        err: var.sqrt(),
+        ess: kish_ess(log_w)?,
+    })
+}
+
 /// Validates log weights and returns lse(ln w), refusing an all-zero weight set.
 pub(crate) fn checked_total(log_w: &[f64]) -> Result<f64> {
     check_non_empty("log_w", log_w)?;
@@ -247,5 +288,36 @@ mod tests {
             let norm = normalised_log_weights(&values).unwrap();
             prop_assert!(logsumexp(&norm).abs() < 1e-12);
         }
+    }
+
+    #[test]
+    fn weighted_mean_is_the_sample_mean_for_equal_weights() {
+        let a = [1.0, 2.0, 4.0, 7.0];
+        let m = weighted_mean(&a, &[0.3; 4]).unwrap();
+        assert!((m.mean - 3.5).abs() < 1e-12);
+        // Plug-in variance Σ (a - 3.5)² / 16 = 21 / 16.
+        assert!((m.err - (21.0f64 / 16.0).sqrt()).abs() < 1e-12);
+        assert!((m.ess - 4.0).abs() < 1e-12);
+        assert!(weighted_mean(&a, &[0.0; 3]).is_err());
+        assert!(weighted_mean(&[1.0, f64::NAN], &[0.0; 2]).is_err());
+    }
+
+    #[test]
+    fn weighted_mean_reweights_a_gaussian_to_its_shifted_target() {
+        // Draws from N(0, 1) reweighted to N(1, 1): w = exp(x - 1/2); exact mean 1 and
+        // E[x²] = 2. The error bar must cover the exact value (|z| < 4 at this seed).
+        use rand::SeedableRng;
+        use rand_distr::{Distribution, StandardNormal};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(5);
+        let x: Vec<f64> = (0..20000)
+            .map(|_| StandardNormal.sample(&mut rng))
+            .collect();
+        let lw: Vec<f64> = x.iter().map(|v| v - 0.5).collect();
+        let m = weighted_mean(&x, &lw).unwrap();
+        assert!(((m.mean - 1.0) / m.err).abs() < 4.0, "{m:?}");
+        assert!(m.err < 0.03 && m.err > 0.005, "{m:?}");
+        let x2: Vec<f64> = x.iter().map(|v| v * v).collect();
+        let m2 = weighted_mean(&x2, &lw).unwrap();
+        assert!(((m2.mean - 2.0) / m2.err).abs() < 4.0, "{m2:?}");
     }
 }

@@ -196,7 +196,7 @@ impl StackSpec {
                                 "checkerboard layers need a square lattice: lattice_side = {l} but data_dim = {d}"
                             )));
                         }
-                        if l % 2 != 0 {
+                        if !l.is_multiple_of(2) {
                             return Err(at(&format!(
                                 "checkerboard layers need an even lattice side, got {l}"
                             )));

@@ -131,7 +131,7 @@ fn neighbour_table(side: usize, k: usize) -> Vec<usize> {
 /// known length so that the compiler inlines them instead of calling memcpy.
 #[inline(always)]
 fn copy_small<T: Real>(dst: &mut [T], src: &[T]) {
-    if dst.len() % 8 == 0 {
+    if dst.len().is_multiple_of(8) {
         for (d8, s8) in dst.chunks_exact_mut(8).zip(src.chunks_exact(8)) {
             let d8: &mut [T; 8] = d8.try_into().expect("chunks of 8");
             let s8: &[T; 8] = s8.try_into().expect("chunks of 8");

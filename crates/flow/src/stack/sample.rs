@@ -1,8 +1,9 @@
-//! Independent draws from a layer stack with what reweighting needs.
+//! Drawing from a layer stack: independent draws with what reweighting needs, and
+//! latent-space Metropolis.
 
 use super::{StackFlow, StackTape};
 use crate::real::Real;
-use crate::sample::Generated;
+use crate::sample::{latent_chain, Generated, LatentMap, LatentMcParams, LatentMcResult};
 use crate::FlowError;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
@@ -76,4 +77,59 @@ pub fn generate<T: Real>(
         out.log_weight.push(-u - lq);
     }
     Ok(out)
+}
+
+/// The stack's two directions for latent Metropolis.
+struct StackMap<'a, T: Real> {
+    flow: &'a StackFlow<T>,
+    tape: StackTape<T>,
+}
+
+impl<T: Real> LatentMap<T> for StackMap<'_, T> {
+    fn dims(&self) -> (usize, usize) {
+        (self.flow.dim(), self.flow.dim())
+    }
+    fn to_latent(&mut self, x: &[T], z: &mut [T]) -> Result<(), FlowError> {
+        z.copy_from_slice(x);
+        let mut ld = vec![T::zero(); x.len() / self.flow.dim()];
+        self.flow.invert(z, &mut ld, &mut self.tape, false);
+        Ok(())
+    }
+    fn to_data(
+        &mut self,
+        z: &[T],
+        energy: &dyn EnergyModel,
+        x: &mut [f64],
+        log_det: &mut [f64],
+        e: &mut [f64],
+    ) -> Result<(), FlowError> {
+        let mut xt = z.to_vec();
+        let mut ld = vec![T::zero(); log_det.len()];
+        self.flow.generate(&mut xt, &mut ld, &mut self.tape, false);
+        for (o, v) in x.iter_mut().zip(&xt) {
+            *o = v.to64();
+        }
+        for (o, v) in log_det.iter_mut().zip(&ld) {
+            *o = v.to64();
+        }
+        energy.evaluate(x, e, None)?;
+        Ok(())
+    }
+}
+
+/// Latent-space Metropolis through a layer stack: exact for exp(−u(x)) whatever the
+/// flow (see [`crate::latent_metropolis`], which this shares its chain with).
+pub fn latent_metropolis<T: Real>(
+    flow: &StackFlow<T>,
+    energy: &dyn EnergyModel,
+    params: &LatentMcParams,
+    kt: f64,
+    start: Option<&[f64]>,
+    seed: u64,
+) -> Result<LatentMcResult, FlowError> {
+    let mut map = StackMap {
+        flow,
+        tape: StackTape::default(),
+    };
+    latent_chain(&mut map, energy, params, kt, start, seed)
 }

@@ -328,7 +328,7 @@ fn weight_file_round_trips_and_refuses_unknown_layers_and_damage() {
     let header = String::from_utf8(bytes[8..8 + n].to_vec()).unwrap();
     let renamed = header.replace("checkerboard", "hexagonal");
     let mut hb = renamed.into_bytes();
-    while hb.len() % 8 != 0 {
+    while !hb.len().is_multiple_of(8) {
         hb.push(b' ');
     }
     let mut out = (hb.len() as u64).to_le_bytes().to_vec();

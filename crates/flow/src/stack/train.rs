@@ -214,7 +214,7 @@ pub fn train<T: Real>(
 ) -> Result<TrainReport, FlowError> {
     p.validate()?;
     let d = flow.dim();
-    if data.len() % d != 0 {
+    if !data.len().is_multiple_of(d) {
         return Err(FlowError::Shape {
             what: "training data",
             expected: d,
