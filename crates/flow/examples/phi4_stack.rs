@@ -61,6 +61,24 @@ fn main() {
     let m = lw.iter().cloned().fold(f64::MIN, f64::max);
     let s1: f64 = lw.iter().map(|v| (v - m).exp()).sum();
     let s2: f64 = lw.iter().map(|v| (2.0 * (v - m)).exp()).sum();
+    let f64flow = flow.to_precision::<f64>();
+    let g64 = generate(&f64flow, &model, 8, 1.0, 1.0, 1, 1000).unwrap();
+    println!(
+        "log q f32 {:?}\nlog q f64 {:?}",
+        &g.log_q[..4],
+        &g64.log_q[..4]
+    );
+    let mean_uq: f64 = g
+        .reduced_energy
+        .iter()
+        .zip(&g.log_q)
+        .map(|(u, q)| u + q)
+        .sum::<f64>()
+        / lw.len() as f64;
+    println!(
+        "E_q[u + log q] = {mean_uq:.4} (train loss - 90.81 = {:.4})",
+        r.kl_loss.last().unwrap() - 32.0 * (1.0 + (2.0 * std::f64::consts::PI).ln())
+    );
     println!(
         "ess {:.4} train {:.1}s",
         s1 * s1 / s2 / lw.len() as f64,

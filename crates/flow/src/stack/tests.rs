@@ -344,3 +344,38 @@ fn weight_file_round_trips_and_refuses_unknown_layers_and_damage() {
         .to_string();
     assert!(e.contains("tarn-flow-stack"), "{e}");
 }
+
+#[test]
+fn density_integrates_to_one() {
+    // q on a 2-D grid, by quadrature, for strongly non-identity flows: any constant
+    // error in a log-determinant shows up here even where a finite-difference Jacobian
+    // of one point would agree.
+    // The grids resolve each flow's sharpest features (splines make narrow peaks with
+    // their identity tails keeping the mass near the interval; affine maps spread it).
+    for (transform, scale, (lo, hi, n)) in [
+        (TransformKind::Affine, 0.5, (-30.0, 30.0, 3000)),
+        (TransformKind::Spline, 1.0, (-6.0, 6.0, 3000)),
+    ] {
+        let mut spec = dense_spec(2, transform);
+        spec.layers[0].repeat = 2;
+        let mut f = StackFlow::<f64>::new(spec, 3).unwrap();
+        let mut rng = ChaCha8Rng::seed_from_u64(9);
+        for p in f.params_mut() {
+            *p = rng.gen_range(-scale..scale);
+        }
+        let h = (hi - lo) / n as f64;
+        let mut pts = Vec::with_capacity(2 * n * n);
+        for i in 0..n {
+            for j in 0..n {
+                pts.push(lo + (i as f64 + 0.5) * h);
+                pts.push(lo + (j as f64 + 0.5) * h);
+            }
+        }
+        let lq = f.log_prob(&pts, 1.0, &mut StackTape::default());
+        let total: f64 = lq.iter().map(|l| l.exp()).sum::<f64>() * h * h;
+        assert!(
+            (total - 1.0).abs() < 1e-2,
+            "{transform:?}: integral {total}"
+        );
+    }
+}
