@@ -494,6 +494,7 @@ fn finish_round(ctx: &Ctx, round: u32, wall: Duration) -> Result<(), EngineError
         new_states,
         states: states.len() as u32,
         energy_evals,
+        cumulative_energy_evals: rec.cumulative_energy_evals,
     });
     write_tables(ctx);
     Ok(())
