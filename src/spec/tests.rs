@@ -52,7 +52,7 @@ fn broken_files_get_exact_messages() {
         (
             "walkers = 2",
             "walker = 2",
-            "c.toml:14:1: explore[0].walker: unknown field `walker`, expected one of `name`, `kind`, `command`, `walkers`, `restart`, `timeout_seconds`, `pool_limit`, `params`, `slurm`\n   |\n14 | walker = 2\n   | ^^^^^^",
+            "c.toml:14:1: explore[0].walker: unknown field `walker`, expected one of `name`, `kind`, `command`, `walkers`, `restart`, `timeout_seconds`, `pool_limit`, `params`, `slurm`; did you mean `walkers`?\n   |\n14 | walker = 2\n   | ^^^^^^",
         ),
         (
             "walkers = 2",
@@ -114,6 +114,32 @@ fn broken_files_get_exact_messages() {
             "name = \"dedup\"",
             "c.toml:16:1: dedup.name: stage name 'dedup' (this stage's default name) is used twice; give each stage its own name\n   |\n16 | [dedup]\n   | ^^^^^^^",
         ),
+        // Errors inside a stage's params point at the key's own line.
+        (
+            "kind = \"hold\"\nwalkers = 2",
+            "kind = \"langevin\"\nwalkers = 2\n[explore.params]\ndt = 0.01\nn_step = 10",
+            "c.toml:17:1: explore[0].params.n_step: langevin: unknown field `n_step`, expected one of `n_steps`, `dt`, `friction`, `save_stride`, `temperature_factor`; did you mean `n_steps`?\n   |\n17 | n_step = 10\n   | ^^^^^^",
+        ),
+        (
+            "kind = \"hold\"\nwalkers = 2",
+            "kind = \"langevin\"\nwalkers = 2\n[explore.params]\ncolour = 1",
+            "c.toml:16:1: explore[0].params.colour: langevin: unknown field `colour`, expected one of `n_steps`, `dt`, `friction`, `save_stride`, `temperature_factor`\n   |\n16 | colour = 1\n   | ^^^^^^",
+        ),
+        (
+            "kind = \"hold\"\nwalkers = 2",
+            "kind = \"langevin\"\nwalkers = 2\n[explore.params]\nn_steps = 10\ndt = -1.0",
+            "c.toml:17:6: explore[0].params.dt: langevin: invalid parameter `dt`: must be positive\n   |\n17 | dt = -1.0\n   |      ^^^^",
+        ),
+        (
+            "kind = \"hold\"\nwalkers = 2",
+            "kind = \"metropolis\"\nwalkers = 2\n[explore.params]\nn_steps = \"lots\"",
+            "c.toml:16:11: explore[0].params.n_steps: metropolis: n_steps: invalid type: string \"lots\", expected u64\n   |\n16 | n_steps = \"lots\"\n   |           ^^^^^^",
+        ),
+        (
+            "[dedup]\nkind = \"quench\"",
+            "[dedup]\nkind = \"quench\"\n[dedup.params]\nenergy_tolerence = 1e-6",
+            "c.toml:19:1: dedup.params.energy_tolerence: quench: unknown field `energy_tolerence`, expected one of `force_tolerance`, `max_steps`, `energy_tolerance`, `fingerprint_tolerance`, `max_per_state`, `fingerprint`, `dt_start`, `dt_max`, `max_step`; did you mean `energy_tolerance`?\n   |\n19 | energy_tolerence = 1e-6\n   | ^^^^^^^^^^^^^^^^",
+        ),
     ];
     let mut wrong = Vec::new();
     for (i, (from, to, want)) in table.iter().enumerate() {
@@ -161,14 +187,14 @@ fn built_in_params_are_checked_before_anything_runs() {
         "kind = \"langevin\"\nwalkers = 2\n[explore.params]\nn_step = 10",
     );
     let e = parse(&typo).unwrap_err().to_string();
-    assert!(e.starts_with("c.toml:15:1: explore[0].params: langevin: unknown field `n_step`, expected one of `n_steps`"), "{e}");
+    assert!(e.starts_with("c.toml:16:1: explore[0].params.n_step: langevin: unknown field `n_step`, expected one of `n_steps`"), "{e}");
     let range = GOOD.replace(
         "kind = \"hold\"\nwalkers = 2",
         "kind = \"langevin\"\nwalkers = 2\n[explore.params]\ndt = -1.0",
     );
     let e = parse(&range).unwrap_err().to_string();
     assert!(
-        e.contains("explore[0].params: langevin: invalid parameter `dt`: must be positive"),
+        e.contains("explore[0].params.dt: langevin: invalid parameter `dt`: must be positive"),
         "{e}"
     );
     let wrong_type = GOOD.replace(
@@ -178,7 +204,7 @@ fn built_in_params_are_checked_before_anything_runs() {
     let e = parse(&wrong_type).unwrap_err().to_string();
     assert!(
         e.contains(
-            "explore[0].params: metropolis: n_steps: invalid type: string \"lots\", expected u64"
+            "explore[0].params.n_steps: metropolis: n_steps: invalid type: string \"lots\", expected u64"
         ),
         "{e}"
     );
