@@ -70,12 +70,15 @@ pub enum Command {
     /// Validate a campaign file and print the resolved plan, including every command
     /// it will run.
     Check {
+        /// The campaign file to check.
         file: PathBuf,
+        /// Print the plan as one JSON object.
         #[arg(long)]
         json: bool,
     },
     /// Start a campaign, or continue it if its store exists.
     Run {
+        /// The campaign file (the same file continues the same campaign).
         file: PathBuf,
         /// Go on although the campaign file changed since the store was created; the
         /// change is recorded in the event log.
@@ -87,38 +90,50 @@ pub enum Command {
     },
     /// Continue an interrupted campaign (the campaign file is read from its store).
     Resume {
+        /// The campaign's name (its `name` in the campaign file).
         name: String,
+        /// No progress output.
         #[arg(long, short)]
         quiet: bool,
     },
     /// Where a campaign stands; works while it runs.
     Status {
+        /// The campaign's name (its `name` in the campaign file).
         name: String,
+        /// Print one JSON object.
         #[arg(long)]
         json: bool,
     },
     /// Per-round metrics and cost.
     Rounds {
+        /// The campaign's name (its `name` in the campaign file).
         name: String,
+        /// Print a JSON array, one object per round.
         #[arg(long)]
         json: bool,
     },
     /// The catalogue of states: who found what, when, with which seed, at what cost.
     States {
+        /// The campaign's name (its `name` in the campaign file).
         name: String,
+        /// Print a JSON array, one object per state.
         #[arg(long)]
         json: bool,
     },
     /// Write samples, energies, states and metrics as .npy, .csv and .json files.
     Export {
+        /// The campaign's name (its `name` in the campaign file).
         name: String,
+        /// The directory to write the files into (created if missing).
         #[arg(long, value_name = "DIR")]
         out: PathBuf,
     },
     /// Write the campaign report: one self-contained HTML file with plots. The running
     /// engine also refreshes STATE/NAME/report.html after every round.
     Report {
+        /// The campaign's name (its `name` in the campaign file).
         name: String,
+        /// The HTML file to write.
         #[arg(long, value_name = "FILE.html")]
         out: PathBuf,
     },
@@ -126,6 +141,7 @@ pub enum Command {
     /// along it; --relax turns it into a minimum-energy path whose highest point
     /// estimates the barrier.
     Path {
+        /// The campaign's name (its `name` in the campaign file).
         name: String,
         /// State id to start from (see `tarn states`).
         #[arg(long)]
@@ -139,12 +155,16 @@ pub enum Command {
         /// Relax the path (climbing-image nudged elastic band).
         #[arg(long)]
         relax: bool,
+        /// Print the path as one JSON object.
         #[arg(long)]
         json: bool,
     },
     /// A hash of all scientific content (no times, hosts or durations): equal digests
     /// mean equal results.
-    Digest { name: String },
+    Digest {
+        /// The campaign's name (its `name` in the campaign file).
+        name: String,
+    },
     /// Run a built-in worker on the task named by $TARN_TASK (started by tarn).
     Work {
         /// The worker kind.
@@ -715,6 +735,31 @@ fn cmd_new(template: Option<&str>, out: Option<&Path>, list: bool) -> Result<u8,
 
 #[cfg(test)]
 mod tests {
+    /// Walks clap's command tree: every option and positional argument of every
+    /// subcommand must have a help line.
+    #[test]
+    fn every_option_and_positional_argument_has_help() {
+        use clap::CommandFactory;
+        fn walk(cmd: &clap::Command, path: &str, missing: &mut Vec<String>) {
+            for arg in cmd.get_arguments() {
+                let builtin = matches!(arg.get_id().as_str(), "help" | "version");
+                if !builtin && arg.get_help().is_none() && arg.get_long_help().is_none() {
+                    missing.push(format!("{path} <{}>", arg.get_id()));
+                }
+            }
+            for sub in cmd.get_subcommands() {
+                walk(sub, &format!("{path} {}", sub.get_name()), missing);
+            }
+        }
+        let mut missing = Vec::new();
+        walk(&super::Cli::command(), "tarn", &mut missing);
+        assert!(missing.is_empty(), "arguments without help: {missing:?}");
+        // The walk sees the subcommands' arguments (a broken walk would pass).
+        let root = super::Cli::command();
+        let check = root.find_subcommand("check").expect("check");
+        assert!(check.get_arguments().any(|a| a.get_id() == "file"));
+    }
+
     #[test]
     fn a_clock_that_moved_back_gives_no_negative_age() {
         assert_eq!(super::last_update_line(100.4, 90.0), "last update 10 s ago");
