@@ -137,6 +137,9 @@ impl Monitor {
         if inner.quiet {
             return;
         }
+        // Lines quote workers' errors and stderr: no control character reaches the
+        // terminal raw.
+        let text = crate::out::visible(text);
         match &inner.bars {
             Some(b) => b.multi.suspend(|| eprintln!("{text}")),
             None => eprintln!("{text}"),

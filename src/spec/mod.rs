@@ -8,6 +8,7 @@
 //! kinds, shapes) and builds the domain type. Every error carries the key path and,
 //! where the key exists in the file, its line, column and the line itself.
 
+mod programs;
 pub mod render;
 pub mod templates;
 

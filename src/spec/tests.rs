@@ -232,3 +232,77 @@ fn retry_delays_grow_are_capped_and_jitter_is_seeded() {
     let v = j.delay(3, 42).as_secs_f64();
     assert!((1.0..=3.0).contains(&v), "{v}");
 }
+
+#[test]
+fn a_command_whose_program_cannot_run_is_refused_naming_its_key() {
+    use std::os::unix::fs::PermissionsExt;
+    let dir = tempfile::tempdir().expect("temp dir");
+    let base = dir.path();
+    std::fs::write(base.join("plain.py"), "print(1)\n").expect("write");
+    std::fs::write(base.join("run.sh"), "#!/bin/sh\n").expect("write");
+    std::fs::set_permissions(base.join("run.sh"), std::fs::Permissions::from_mode(0o755))
+        .expect("chmod");
+    let with_command = |cmd: &str| {
+        GOOD.replace(
+            "kind = \"hold\"\nwalkers = 2",
+            &format!("command = {cmd}\nwalkers = 2"),
+        )
+    };
+    let check = |cmd: &str| {
+        let c = Campaign::parse("c.toml", &with_command(cmd), base).expect("parses");
+        c.check_programs("c.toml").map_err(|e| e.to_string())
+    };
+    // Runnable: an interpreter on PATH, an executable file beside the campaign file.
+    assert_eq!(check(r#"["python3", "plain.py"]"#), Ok(()));
+    assert_eq!(check(r#"["./run.sh"]"#), Ok(()));
+    let table: &[(&str, String)] = &[
+        (
+            r#"["no-such-program-tarn", "x"]"#,
+            "c.toml:13:12: explore[0].command: program 'no-such-program-tarn' is not found on PATH (give its path, or install it)\n   |\n13 | command = [\"no-such-program-tarn\", \"x\"]\n   |            ^^^^^^^^^^^^^^^^^^^^^^".into(),
+        ),
+        (
+            r#"["./plain.py"]"#,
+            format!("c.toml:13:12: explore[0].command: program '{}' is not executable (make it so with chmod +x, or name its interpreter first, e.g. [\"python3\", \"./plain.py\"])\n   |\n13 | command = [\"./plain.py\"]\n   |            ^^^^^^^^^^^^", base.join("./plain.py").display()),
+        ),
+        (
+            r#"["bin/missing"]"#,
+            format!("c.toml:13:12: explore[0].command: program 'bin/missing' does not exist: a relative path is looked up in the campaign file's directory ({})\n   |\n13 | command = [\"bin/missing\"]\n   |            ^^^^^^^^^^^^^", base.join("bin/missing").display()),
+        ),
+        (
+            r#"["plain.py"]"#,
+            "c.toml:13:12: explore[0].command: program 'plain.py' is not found on PATH; for the file next to the campaign file write \"./plain.py\"\n   |\n13 | command = [\"plain.py\"]\n   |            ^^^^^^^^^^".into(),
+        ),
+    ];
+    for (cmd, want) in table {
+        assert_eq!(check(cmd).unwrap_err(), *want, "{cmd}");
+    }
+    // The dedup stage and an external model's program are checked too.
+    let dedup = GOOD.replace(
+        "[dedup]\nkind = \"quench\"",
+        "[dedup]\ncommand = [\"/nonexistent/dedup\"]",
+    );
+    let e = Campaign::parse("c.toml", &dedup, base)
+        .expect("parses")
+        .check_programs("c.toml")
+        .unwrap_err()
+        .to_string();
+    assert!(
+        e.starts_with("c.toml:17:12: dedup.command: program '/nonexistent/dedup' does not exist\n"),
+        "{e}"
+    );
+    let external = GOOD.replace(
+        "model = \"muller-brown\"",
+        "model = \"external\"\ncommand = [\"/nonexistent/energy\"]\ndim = 2",
+    );
+    let e = Campaign::parse("c.toml", &external, base)
+        .expect("parses")
+        .check_programs("c.toml")
+        .unwrap_err()
+        .to_string();
+    assert!(
+        e.starts_with(
+            "c.toml:7:12: system.command: program '/nonexistent/energy' does not exist\n"
+        ),
+        "{e}"
+    );
+}
