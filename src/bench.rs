@@ -31,30 +31,31 @@ pub fn run(what: &str, json: bool, tasks: u32) -> anyhow::Result<u8> {
     }
 }
 
-pub(crate) fn print_rows<T: Serialize>(json: bool, rows: &[T]) {
+pub(crate) fn print_rows<T: Serialize>(json: bool, rows: &[T]) -> std::io::Result<()> {
     for r in rows {
         let v = serde_json::to_value(r).expect("serializable");
         if json {
-            println!("{v}");
+            crate::out::line(&v.to_string())?;
         } else {
-            println!(
-                "{}",
-                v.as_object()
-                    .map(|o| o
-                        .iter()
+            let text = v
+                .as_object()
+                .map(|o| {
+                    o.iter()
                         .map(|(k, v)| format!("{k}={v}"))
                         .collect::<Vec<_>>()
-                        .join("  "))
-                    .unwrap_or_default()
-            );
+                        .join("  ")
+                })
+                .unwrap_or_default();
+            crate::out::line(&text)?;
         }
     }
+    Ok(())
 }
 
 /// Energy kernels on 1 and 2 threads, then the example external model through its pipe.
 fn energy(json: bool) -> anyhow::Result<u8> {
     let rows = crate::physics::bench::energy_benchmark(&[1, 2], 256, 1.0)?;
-    print_rows(json, &rows);
+    print_rows(json, &rows)?;
     let server = std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
         .join("examples/external-energy/muller_brown_server.py");
     if server.is_file() {
@@ -67,7 +68,7 @@ fn energy(json: bool) -> anyhow::Result<u8> {
                 .collect();
             let (rate, secs) = crate::physics::bench::model_throughput(&model, &x, 1.0)?;
             let row = serde_json::json!({"bench": "energy", "system": "external-muller-brown-pipe", "threads": 1, "batch": batch, "configs_per_s": rate.round(), "seconds": secs});
-            print_rows(json, &[row]);
+            print_rows(json, &[row])?;
         }
     }
     Ok(0)
@@ -77,6 +78,6 @@ fn energy(json: bool) -> anyhow::Result<u8> {
 fn flow(json: bool) -> anyhow::Result<u8> {
     let rows =
         crate::flow::bench::run_flow_bench(&crate::flow::bench::standard_configs(), &[1, 2], 2.0)?;
-    print_rows(json, &rows);
+    print_rows(json, &rows)?;
     Ok(0)
 }

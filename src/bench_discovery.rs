@@ -214,12 +214,12 @@ fn run_case(case: &Case, opts: &Options) -> anyhow::Result<()> {
         "langevin_friction": case.langevin_friction, "tolerance_kt": TOLERANCE_KT,
         "exact_free_energies": exact,
     });
-    crate::bench::print_rows(opts.json, &[settings]);
+    crate::bench::print_rows(opts.json, &[settings])?;
     let mut rows: Vec<RunRow> = Vec::new();
     for s in 0..opts.seeds {
         let seed = campaign.seed + s as u64;
         let row = run_tarn(case, &tmp, seed, exact.as_deref())?;
-        crate::bench::print_rows(opts.json, std::slice::from_ref(&row));
+        crate::bench::print_rows(opts.json, std::slice::from_ref(&row))?;
         rows.push(row);
         for method in ["metropolis", "langevin"] {
             let b = Baseline {
@@ -232,12 +232,12 @@ fn run_case(case: &Case, opts: &Options) -> anyhow::Result<()> {
                 step,
             };
             let row = b.run(method, seed)?;
-            crate::bench::print_rows(opts.json, std::slice::from_ref(&row));
+            crate::bench::print_rows(opts.json, std::slice::from_ref(&row))?;
             rows.push(row);
         }
     }
     let summary = summarise(case, &rows, budget);
-    crate::bench::print_rows(opts.json, &summary);
+    crate::bench::print_rows(opts.json, &summary)?;
     if opts.plots.is_some() && exact.is_none() {
         eprintln!(
             "{}: no exact free energies, so no cost curve to draw (discovery only)",

@@ -135,11 +135,11 @@ pub fn run(json: bool, tasks: u32) -> anyhow::Result<u8> {
     result
 }
 
-fn emit(json: bool, row: Row) {
+fn emit(json: bool, row: Row) -> std::io::Result<()> {
     if json {
-        println!("{}", serde_json::to_string(&row).expect("json"));
+        crate::out::line(&serde_json::to_string(&row).expect("json"))
     } else {
-        println!("{:<10} {}", row.bench, row.figures);
+        crate::out::line(&format!("{:<10} {}", row.bench, row.figures))
     }
 }
 
@@ -182,7 +182,7 @@ fn measure(tmp: &Path, tasks: u32, json: bool) -> anyhow::Result<u8> {
                 "note": "best of 3 alternations; engine time excludes the round's one dedup task and includes task directories, task.json, inputs, validation and the durable commit"
             }),
         },
-    );
+    )?;
 
     // 2. A long campaign: memory at 200 and at 1000 rounds, then the reopen time.
     let file = tmp.join("long.toml");
@@ -219,7 +219,7 @@ fn measure(tmp: &Path, tasks: u32, json: bool) -> anyhow::Result<u8> {
                 "store_mb": round3(store.size_on_disk() as f64 / 1e6), "build_s": round3(build),
             }),
         },
-    );
+    )?;
     emit(
         json,
         Row {
@@ -230,7 +230,7 @@ fn measure(tmp: &Path, tasks: u32, json: bool) -> anyhow::Result<u8> {
                 "sled_cache_cap_mb": crate::store::CACHE_BYTES / (1 << 20),
             }),
         },
-    );
+    )?;
     Ok(0)
 }
 

@@ -9,6 +9,7 @@ pub mod bench_engine;
 pub mod cli;
 pub mod engine;
 pub mod executor;
+pub mod out;
 pub mod protocol;
 pub mod report;
 pub mod spec;

@@ -191,7 +191,8 @@ fn ctrl_c_stops_at_a_task_boundary_with_exit_3_and_resume_finishes() {
     signal(&child, 2);
     let r = wait_with_limit(child, Duration::from_secs(30));
     r.code(3);
-    assert!(r.stderr.contains("tarn resume faults"), "{}", r.stderr);
+    let resume = format!("tarn --state {} resume faults", env.state().display());
+    assert!(r.stderr.contains(&resume), "{}", r.stderr);
     // The running tasks were allowed to finish and were committed.
     let tasks_done = std::fs::read_to_string(env.state().join("faults/status.json")).unwrap();
     assert!(

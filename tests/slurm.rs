@@ -727,7 +727,10 @@ fn ctrl_c_without_a_terminal_leaves_the_jobs_and_resume_collects_them() {
     );
     assert!(
         r.stderr.contains("Slurm job(s) queued or running")
-            && r.stderr.contains("`tarn resume sleave` waits for them"),
+            && r.stderr.contains(&format!(
+                "`tarn --state {} resume sleave` waits for them",
+                c.env.state().display()
+            )),
         "{}",
         r.stderr
     );

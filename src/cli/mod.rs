@@ -46,7 +46,7 @@ pub struct Cli {
         long,
         global = true,
         env = "TARN_STATE",
-        default_value = "state",
+        default_value = crate::out::DEFAULT_STATE,
         value_name = "DIR"
     )]
     pub state: PathBuf,
@@ -70,12 +70,15 @@ pub enum Command {
     /// Validate a campaign file and print the resolved plan, including every command
     /// it will run.
     Check {
+        /// The campaign file to check.
         file: PathBuf,
+        /// Print the plan as one JSON object.
         #[arg(long)]
         json: bool,
     },
     /// Start a campaign, or continue it if its store exists.
     Run {
+        /// The campaign file (the same file continues the same campaign).
         file: PathBuf,
         /// Go on although the campaign file changed since the store was created; the
         /// change is recorded in the event log.
@@ -87,38 +90,50 @@ pub enum Command {
     },
     /// Continue an interrupted campaign (the campaign file is read from its store).
     Resume {
+        /// The campaign's name (its `name` in the campaign file).
         name: String,
+        /// No progress output.
         #[arg(long, short)]
         quiet: bool,
     },
     /// Where a campaign stands; works while it runs.
     Status {
+        /// The campaign's name (its `name` in the campaign file).
         name: String,
+        /// Print one JSON object.
         #[arg(long)]
         json: bool,
     },
     /// Per-round metrics and cost.
     Rounds {
+        /// The campaign's name (its `name` in the campaign file).
         name: String,
+        /// Print a JSON array, one object per round.
         #[arg(long)]
         json: bool,
     },
     /// The catalogue of states: who found what, when, with which seed, at what cost.
     States {
+        /// The campaign's name (its `name` in the campaign file).
         name: String,
+        /// Print a JSON array, one object per state.
         #[arg(long)]
         json: bool,
     },
     /// Write samples, energies, states and metrics as .npy, .csv and .json files.
     Export {
+        /// The campaign's name (its `name` in the campaign file).
         name: String,
+        /// The directory to write the files into (created if missing).
         #[arg(long, value_name = "DIR")]
         out: PathBuf,
     },
     /// Write the campaign report: one self-contained HTML file with plots. The running
     /// engine also refreshes STATE/NAME/report.html after every round.
     Report {
+        /// The campaign's name (its `name` in the campaign file).
         name: String,
+        /// The HTML file to write.
         #[arg(long, value_name = "FILE.html")]
         out: PathBuf,
     },
@@ -126,6 +141,7 @@ pub enum Command {
     /// along it; --relax turns it into a minimum-energy path whose highest point
     /// estimates the barrier.
     Path {
+        /// The campaign's name (its `name` in the campaign file).
         name: String,
         /// State id to start from (see `tarn states`).
         #[arg(long)]
@@ -139,12 +155,16 @@ pub enum Command {
         /// Relax the path (climbing-image nudged elastic band).
         #[arg(long)]
         relax: bool,
+        /// Print the path as one JSON object.
         #[arg(long)]
         json: bool,
     },
     /// A hash of all scientific content (no times, hosts or durations): equal digests
     /// mean equal results.
-    Digest { name: String },
+    Digest {
+        /// The campaign's name (its `name` in the campaign file).
+        name: String,
+    },
     /// Run a built-in worker on the task named by $TARN_TASK (started by tarn).
     Work {
         /// The worker kind.
@@ -194,6 +214,35 @@ impl Failure {
     }
 }
 
+impl Failure {
+    /// The reader closed stdout: a normal end, exit 0, nothing more to say.
+    fn stdout_closed() -> Self {
+        Failure {
+            code: EXIT_OK,
+            message: String::new(),
+        }
+    }
+}
+
+impl From<std::io::Error> for Failure {
+    /// A failed write to stdout.
+    fn from(e: std::io::Error) -> Self {
+        if crate::out::is_closed(&e) {
+            Failure::stdout_closed()
+        } else {
+            Failure::input(format!("cannot write to stdout: {e}"))
+        }
+    }
+}
+
+/// `println!` to stdout through `crate::out`, returning from the command quietly with
+/// exit 0 when the reader has closed the pipe.
+macro_rules! outln {
+    ($($arg:tt)*) => {
+        crate::out::line(&format!($($arg)*))?
+    };
+}
+
 impl From<EngineError> for Failure {
     fn from(e: EngineError) -> Self {
         Failure::input(e)
@@ -225,7 +274,10 @@ pub fn main() -> ExitCode {
     match result {
         Ok(code) => ExitCode::from(code),
         Err(f) => {
-            eprintln!("tarn: {}", f.message);
+            if !f.message.is_empty() {
+                // A failure message may quote a worker's stderr or result.json.
+                eprintln!("tarn: {}", crate::out::visible(&f.message));
+            }
             ExitCode::from(f.code)
         }
     }
@@ -245,16 +297,20 @@ fn dispatch(cli: &Cli) -> Result<u8, Failure> {
             quiet,
         } => {
             let campaign = Campaign::load(file).map_err(Failure::input)?;
+            campaign
+                .check_programs(&file.display().to_string())
+                .map_err(Failure::input)?;
             let opts = run_options(cli, *accept_change, *quiet)?;
             prepare_state(&opts.state_dir, &campaign.name)?;
             let store = engine::open_for_run(&campaign, file, &opts)?;
-            run_engine(campaign, store, &opts)
+            run_engine(campaign, store, &opts, &file.display().to_string())
         }
         Command::Resume { name, quiet } => {
             let opts = run_options(cli, false, *quiet)?;
             let (campaign, store) = engine::open_for_resume(name, &opts)?;
+            let file = store.current_campaign()?.path;
             prepare_state(&opts.state_dir, name)?;
-            run_engine(campaign, store, &opts)
+            run_engine(campaign, store, &opts, &file)
         }
         Command::Status { name, json } => cmd_status(&cli.state, name, *json),
         Command::Rounds { name, json } => {
@@ -272,7 +328,7 @@ fn dispatch(cli: &Cli) -> Result<u8, Failure> {
             let c = Campaign::parse(&current.path, &current.text, Path::new(&meta.base_dir))
                 .map_err(Failure::input)?;
             let files = report::export::export(&store, c.system.dim, out)?;
-            println!(
+            outln!(
                 "wrote {} files to {}: {}",
                 files.len(),
                 out.display(),
@@ -293,7 +349,7 @@ fn dispatch(cli: &Cli) -> Result<u8, Failure> {
                 }
                 Err(e) => return Err(e.into()),
             }
-            println!("wrote {}", out.display());
+            outln!("wrote {}", out.display());
             Ok(EXIT_OK)
         }
         Command::Path {
@@ -311,7 +367,7 @@ fn dispatch(cli: &Cli) -> Result<u8, Failure> {
         }
         Command::Digest { name } => {
             let store = open_store(&cli.state, name)?;
-            println!("{}", store.digest()?);
+            outln!("{}", store.digest()?);
             Ok(EXIT_OK)
         }
         Command::Bench {
@@ -334,7 +390,13 @@ fn dispatch(cli: &Cli) -> Result<u8, Failure> {
             } else {
                 crate::bench::run(what, *json, *tasks)
             };
-            result.map_err(|e| Failure::input(format!("{e:#}")))
+            result.map_err(|e| {
+                if crate::out::chain_is_closed(&e) {
+                    Failure::stdout_closed()
+                } else {
+                    Failure::input(format!("{e:#}"))
+                }
+            })
         }
         Command::Work { .. } => unreachable!("handled in main"),
     }
@@ -385,7 +447,15 @@ fn init_logging(file: &Path) {
         .try_init();
 }
 
-fn run_engine(campaign: Campaign, store: Store, opts: &RunOptions) -> Result<u8, Failure> {
+/// Runs the engine to its end and turns the end into an exit code and the hint of what
+/// to type next. `file` is the campaign file as the user named it (for `run`) or as the
+/// store recorded it (for `resume`).
+fn run_engine(
+    campaign: Campaign,
+    store: Store,
+    opts: &RunOptions,
+    file: &str,
+) -> Result<u8, Failure> {
     let rt = tokio::runtime::Builder::new_multi_thread()
         .worker_threads(2)
         .enable_all()
@@ -400,18 +470,39 @@ fn run_engine(campaign: Campaign, store: Store, opts: &RunOptions) -> Result<u8,
     match end {
         Ok(RunEnd::Finished(d)) => {
             if !opts.quiet {
-                println!("campaign {name} finished: {}", d.reason);
-                println!("see `tarn states {name}` and `tarn rounds {name}`");
+                let tarn = |cmd: &str| crate::out::tarn_line(&opts.state_dir, &[cmd, &name]);
+                outln!("campaign {name} finished: {}", d.reason);
+                outln!("see `{}` and `{}`", tarn("states"), tarn("rounds"));
             }
             Ok(EXIT_OK)
         }
         Ok(RunEnd::Interrupted) => Err(Failure {
             code: EXIT_INTERRUPTED,
-            message: format!("campaign {name} interrupted; everything committed is kept. Continue with `tarn resume {name}`"),
+            message: format!(
+                "campaign {name} interrupted; everything committed is kept. Continue with `{}`",
+                crate::out::tarn_line(&opts.state_dir, &["resume", &name])
+            ),
         }),
-        Ok(RunEnd::Failed(m)) => Err(Failure { code: EXIT_CAMPAIGN, message: m }),
-        Err(e) => Err(Failure { code: EXIT_CAMPAIGN, message: e.to_string() }),
+        Ok(RunEnd::Failed(m)) => Err(Failure {
+            code: EXIT_CAMPAIGN,
+            message: format!("{m}\n{}", after_failure_hint(&opts.state_dir, &name, file)),
+        }),
+        Err(e) => Err(Failure {
+            code: EXIT_CAMPAIGN,
+            message: e.to_string(),
+        }),
     }
+}
+
+/// What to type after a task failed past its retries. `resume` reruns the campaign file
+/// stored in the campaign, so it helps when the fix is in the worker's own files; a fix
+/// in the campaign file needs `run FILE --accept-change`, which records the new file.
+fn after_failure_hint(state_dir: &Path, name: &str, file: &str) -> String {
+    format!(
+        "fix the worker, then continue with `{}`; if you fix the campaign file instead, continue with `{}` (resume reruns the campaign file as stored)",
+        crate::out::tarn_line(state_dir, &["resume", name]),
+        crate::out::tarn_line(state_dir, &["run", file, "--accept-change"]),
+    )
 }
 
 fn open_store(state: &Path, name: &str) -> Result<Store, Failure> {
@@ -451,12 +542,13 @@ fn print_or_json<T: serde::Serialize>(
     text: impl FnOnce() -> String,
 ) -> Result<u8, Failure> {
     if json {
-        println!(
+        outln!(
             "{}",
             serde_json::to_string_pretty(value).expect("serializable")
         );
     } else {
-        print!("{}", text());
+        // Tables quote metric names and messages that workers chose.
+        crate::out::write(&crate::out::visible(&text()))?;
     }
     Ok(EXIT_OK)
 }
@@ -510,20 +602,29 @@ fn cmd_status(state: &Path, name: &str, json: bool) -> Result<u8, Failure> {
             "tasks_running": snap.as_ref().map(|s| s.tasks_running.clone()).unwrap_or_default(),
             "updated_unix": snap.as_ref().map(|s| s.updated_unix),
         });
-        println!("{}", serde_json::to_string_pretty(&v).expect("json"));
+        outln!("{}", serde_json::to_string_pretty(&v).expect("json"));
         return Ok(EXIT_OK);
     }
-    println!("campaign {name}: {phase}");
-    println!("  rounds done: {rounds_done}   states: {states}   energy evaluations: {evals}");
+    // The phase and the running tasks quote a worker's failure message.
+    let phase = crate::out::visible(&phase);
+    outln!("campaign {name}: {phase}");
+    outln!("  rounds done: {rounds_done}   states: {states}   energy evaluations: {evals}");
     if let (true, Some(s)) = (running, &snap) {
-        println!(
+        outln!(
             "  now: round {} of at most {}, stage {} ({}/{} tasks of the round done)",
-            s.round, s.max_rounds, s.stage, s.tasks_done_this_round, s.tasks_this_round
+            s.round,
+            s.max_rounds,
+            s.stage,
+            s.tasks_done_this_round,
+            s.tasks_this_round
         );
         if !s.tasks_running.is_empty() {
-            println!("  running: {}", s.tasks_running.join(", "));
+            outln!(
+                "  running: {}",
+                crate::out::visible(&s.tasks_running.join(", "))
+            );
         }
-        println!(
+        outln!(
             "  {}",
             last_update_line(crate::store::now_unix(), s.updated_unix)
         );
@@ -587,6 +688,8 @@ fn last_update_line(now_unix: f64, updated_unix: f64) -> String {
 
 fn cmd_check(file: &Path, json: bool) -> Result<u8, Failure> {
     let c = Campaign::load(file).map_err(Failure::input)?;
+    c.check_programs(&file.display().to_string())
+        .map_err(Failure::input)?;
     let exe = std::env::current_exe().unwrap_or_else(|_| PathBuf::from("tarn"));
     let commands: Vec<serde_json::Value> = c
         .stages()
@@ -606,16 +709,18 @@ fn cmd_check(file: &Path, json: bool) -> Result<u8, Failure> {
             "start_configurations": c.start.rows(), "commands": commands,
             "max_rounds": c.stop.max_rounds, "file_hash": c.source_hash,
         });
-        println!("{}", serde_json::to_string_pretty(&v).expect("json"));
+        outln!("{}", serde_json::to_string_pretty(&v).expect("json"));
         return Ok(EXIT_OK);
     }
-    println!("{}: campaign '{}' is valid", file.display(), c.name);
-    println!(
+    outln!("{}: campaign '{}' is valid", file.display(), c.name);
+    outln!(
         "  system      {}   kT = {}   seed = {}",
-        c.system.label, c.kt, c.seed
+        c.system.label,
+        c.kt,
+        c.seed
     );
-    println!("  start       {} configuration(s)", c.start.rows());
-    println!("  each round:");
+    outln!("  start       {} configuration(s)", c.start.rows());
+    outln!("  each round:");
     for s in c.stages() {
         let what = match &s.worker {
             spec::Worker::Builtin(k) => format!("built-in '{k}'"),
@@ -626,26 +731,26 @@ fn cmd_check(file: &Path, json: bool) -> Result<u8, Failure> {
         } else {
             String::new()
         };
-        println!("    {:<9} {:<14} {what}{fan}", s.role.as_str(), s.name);
+        outln!("    {:<9} {:<14} {what}{fan}", s.role.as_str(), s.name);
     }
     let (goals, budgets) = stop_rule_lines(&c.stop);
     if goals.is_empty() {
-        println!("  stops when  a budget is spent");
+        outln!("  stops when  a budget is spent");
     } else {
         let join = if c.stop.all { " and " } else { " or " };
-        println!("  stops when  {}", goals.join(join));
+        outln!("  stops when  {}", goals.join(join));
     }
-    println!(
+    outln!(
         "  budgets     {} (any one spent also stops it)",
         budgets.join(", ")
     );
     let e = &c.executor;
-    println!(
+    outln!(
         "  executor    {}: {} tasks at a time, timeout {:.0} s, {} attempt(s) per task, {} thread(s) per task",
         e.kind, e.max_parallel, e.timeout.as_secs_f64(), e.retry.attempts, e.threads_per_task
     );
     if e.slurm.is_some() {
-        println!("  each task is one Slurm job asking for:");
+        outln!("  each task is one Slurm job asking for:");
         for cmd in &commands {
             let args: Vec<&str> = cmd["sbatch_resources"]
                 .as_array()
@@ -653,14 +758,14 @@ fn cmd_check(file: &Path, json: bool) -> Result<u8, Failure> {
                 .flatten()
                 .filter_map(|v| v.as_str())
                 .collect();
-            println!(
+            outln!(
                 "    {:<14} {}",
                 cmd["stage"].as_str().unwrap_or(""),
                 args.join(" ")
             );
         }
     }
-    println!("  commands it will run (never through a shell):");
+    outln!("  commands it will run (never through a shell; shell-quoted here, so that a pasted line runs the same arguments):");
     for cmd in &commands {
         let argv: Vec<String> = cmd["argv"]
             .as_array()
@@ -668,21 +773,39 @@ fn cmd_check(file: &Path, json: bool) -> Result<u8, Failure> {
             .flatten()
             .filter_map(|v| v.as_str().map(String::from))
             .collect();
-        println!(
+        outln!(
             "    {:<14} {}",
             cmd["stage"].as_str().unwrap_or(""),
-            argv.join(" ")
+            crate::out::shell_line(&argv)
         );
     }
+    if let Some(argv) = external_program(&c) {
+        outln!("    {:<14} {}", "energy", crate::out::shell_line(&argv));
+        outln!("                   (the external energy program: each worker that needs energies starts it in its task directory)");
+    }
     Ok(EXIT_OK)
+}
+
+/// The external energy program's argument array (`system.command`), resolved as the
+/// workers receive it, when the system is an external model.
+fn external_program(c: &Campaign) -> Option<Vec<String>> {
+    let argv: Vec<String> = c
+        .system
+        .table
+        .get("command")?
+        .as_array()?
+        .iter()
+        .filter_map(|v| v.as_str().map(String::from))
+        .collect();
+    (!argv.is_empty()).then_some(argv)
 }
 
 fn cmd_new(template: Option<&str>, out: Option<&Path>, list: bool) -> Result<u8, Failure> {
     let all = spec::templates::TEMPLATES;
     if list || template.is_none() {
-        println!("templates (write one with `tarn new NAME`):");
+        outln!("templates (write one with `tarn new NAME`):");
         for t in all {
-            println!("  {:<18} {}", t.name, t.summary);
+            outln!("  {:<18} {}", t.name, t.summary);
         }
         return Ok(EXIT_OK);
     }
@@ -705,7 +828,7 @@ fn cmd_new(template: Option<&str>, out: Option<&Path>, list: bool) -> Result<u8,
     }
     std::fs::write(&path, t.text)
         .map_err(|e| Failure::input(format!("cannot write {}: {e}", path.display())))?;
-    println!(
+    outln!(
         "wrote {}; check it with `tarn check {}`",
         path.display(),
         path.display()
@@ -715,6 +838,31 @@ fn cmd_new(template: Option<&str>, out: Option<&Path>, list: bool) -> Result<u8,
 
 #[cfg(test)]
 mod tests {
+    /// Walks clap's command tree: every option and positional argument of every
+    /// subcommand must have a help line.
+    #[test]
+    fn every_option_and_positional_argument_has_help() {
+        use clap::CommandFactory;
+        fn walk(cmd: &clap::Command, path: &str, missing: &mut Vec<String>) {
+            for arg in cmd.get_arguments() {
+                let builtin = matches!(arg.get_id().as_str(), "help" | "version");
+                if !builtin && arg.get_help().is_none() && arg.get_long_help().is_none() {
+                    missing.push(format!("{path} <{}>", arg.get_id()));
+                }
+            }
+            for sub in cmd.get_subcommands() {
+                walk(sub, &format!("{path} {}", sub.get_name()), missing);
+            }
+        }
+        let mut missing = Vec::new();
+        walk(&super::Cli::command(), "tarn", &mut missing);
+        assert!(missing.is_empty(), "arguments without help: {missing:?}");
+        // The walk sees the subcommands' arguments (a broken walk would pass).
+        let root = super::Cli::command();
+        let check = root.find_subcommand("check").expect("check");
+        assert!(check.get_arguments().any(|a| a.get_id() == "file"));
+    }
+
     #[test]
     fn a_clock_that_moved_back_gives_no_negative_age() {
         assert_eq!(super::last_update_line(100.4, 90.0), "last update 10 s ago");

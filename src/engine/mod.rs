@@ -64,6 +64,14 @@ pub enum EngineError {
     Changed { name: String, diff: String },
     #[error("campaign '{name}' has no store under {dir}; start it with `tarn run FILE`")]
     Unknown { name: String, dir: String },
+    #[error("campaign '{name}' was last run from {base_dir}, which no longer exists (moved?): relative paths in its campaign file resolve from there. Continue it from its new place with `{run}`, naming the campaign file (first run as {file}) where it is now; the same file continues the same campaign")]
+    Moved {
+        name: String,
+        base_dir: String,
+        file: String,
+        /// The command to type, with `--state` when it is not the default.
+        run: String,
+    },
     #[error("{0}")]
     Io(String),
 }
@@ -110,6 +118,7 @@ pub fn open_for_run(
     if created {
         return Ok(store);
     }
+    record_move(&store, campaign)?;
     let current = store.current_campaign()?;
     if current.hash != campaign.source_hash {
         if !opts.accept_change {
@@ -137,6 +146,29 @@ pub fn open_for_run(
     Ok(store)
 }
 
+/// Remembers the campaign file's directory when `run FILE` names a file in another
+/// directory than the store knows (the campaign's folder was moved or copied): relative
+/// paths in the file then resolve from the new place, for this run and for `resume`.
+fn record_move(store: &Store, campaign: &Campaign) -> Result<(), EngineError> {
+    let mut meta = store.meta()?;
+    let now = campaign.base_dir.display().to_string();
+    if meta.base_dir == now {
+        return Ok(());
+    }
+    let mut b = Batch::default();
+    b.event(
+        "campaign_moved",
+        format!(
+            "the campaign file is now read from {now} (was {}); relative paths resolve from there",
+            meta.base_dir
+        ),
+    );
+    meta.base_dir = now;
+    b.put(keys::meta(), &meta);
+    store.apply(b)?;
+    Ok(())
+}
+
 /// Opens an existing campaign by name and rebuilds its campaign from the stored text.
 pub fn open_for_resume(name: &str, opts: &RunOptions) -> Result<(Campaign, Store), EngineError> {
     let dir = campaign_dir(&opts.state_dir, name);
@@ -149,8 +181,17 @@ pub fn open_for_resume(name: &str, opts: &RunOptions) -> Result<(Campaign, Store
     let store = Store::open(&dir)?;
     let meta = store.meta()?;
     let current = store.current_campaign()?;
+    if !Path::new(&meta.base_dir).is_dir() {
+        return Err(EngineError::Moved {
+            name: name.into(),
+            base_dir: meta.base_dir,
+            file: current.path,
+            run: crate::out::tarn_line(&opts.state_dir, &["run", "FILE"]),
+        });
+    }
     let shown = format!("{} (as stored)", current.path);
     let campaign = Campaign::parse(&shown, &current.text, Path::new(&meta.base_dir))?;
+    campaign.check_programs(&shown)?;
     Ok((campaign, store))
 }
 
@@ -194,6 +235,8 @@ struct Ctx {
     level: watch::Receiver<StopLevel>,
     exe: PathBuf,
     dir: PathBuf,
+    /// The state directory as the user gave it, for the commands hints print.
+    state_dir: PathBuf,
 }
 
 /// Runs the campaign until a stop rule holds, a task fails past its retries, or the
@@ -234,6 +277,7 @@ pub async fn run(
         level,
         exe: opts.exe.clone(),
         dir,
+        state_dir: opts.state_dir.clone(),
     });
     let run_id = uuid::Uuid::new_v4();
     ctx.store.log_event(
@@ -494,6 +538,7 @@ fn finish_round(ctx: &Ctx, round: u32, wall: Duration) -> Result<(), EngineError
         new_states,
         states: states.len() as u32,
         energy_evals,
+        cumulative_energy_evals: rec.cumulative_energy_evals,
     });
     write_tables(ctx);
     Ok(())
@@ -760,7 +805,10 @@ async fn run_task_inner(
             }
         }
     }
-    Ok(RunEnd::Failed(format!("{last_error}\n(the task failed {} attempts; fix the worker or the campaign, then `tarn resume {}`)", policy.attempts, ctx.campaign.name)))
+    Ok(RunEnd::Failed(format!(
+        "{last_error}\n(the task failed {} attempts)",
+        policy.attempts
+    )))
 }
 
 /// Removes an attempt's directory and the task and round directories above it when
@@ -1035,11 +1083,12 @@ async fn batch_stop_levels(
         let raw = *signals.borrow();
         let in_flight = ctx.store.jobs().map(|j| j.len()).unwrap_or(0);
         let name = ctx.campaign.name.clone();
+        let resume = crate::out::tarn_line(&ctx.state_dir, &["resume", &name]);
         if raw == StopLevel::AfterRunning && interactive && !asked {
             asked = true;
             tx.send_replace(StopLevel::AfterRunning);
             ctx.monitor.ask(&format!(
-                "interrupt: no new jobs will be submitted. Cancel the {in_flight} Slurm job(s) of campaign {name} that are queued or running? [y/N] (N leaves them; `tarn resume {name}` waits for them)"
+                "interrupt: no new jobs will be submitted. Cancel the {in_flight} Slurm job(s) of campaign {name} that are queued or running? [y/N] (N leaves them; `{resume}` waits for them)"
             ));
             let tx = tx.clone();
             let ctx = ctx.clone();
@@ -1066,7 +1115,7 @@ async fn batch_stop_levels(
             });
         } else if *tx.borrow() < StopLevel::Detach {
             ctx.monitor.line(&format!(
-                "interrupt: leaving {in_flight} Slurm job(s) queued or running and stopping; `tarn resume {name}` waits for them"
+                "interrupt: leaving {in_flight} Slurm job(s) queued or running and stopping; `{resume}` waits for them"
             ));
             tx.send_replace(StopLevel::Detach);
         }

@@ -45,7 +45,10 @@ pub enum Event {
         round: u32,
         new_states: u32,
         states: u32,
+        /// This round's energy evaluations.
         energy_evals: u64,
+        /// Every round's so far, this one included.
+        cumulative_energy_evals: u64,
     },
     StopRequested {
         hard: bool,
@@ -92,13 +95,7 @@ impl Monitor {
         snap.updated_unix = now_unix();
         let bars = (!quiet && std::io::stderr().is_terminal()).then(|| {
             let multi = MultiProgress::with_draw_target(ProgressDrawTarget::stderr());
-            let round = multi.add(ProgressBar::new(u64::from(snap.max_rounds)));
-            round.set_style(
-                ProgressStyle::with_template("{prefix:>8} [{bar:30}] {pos}/{len} rounds  {msg}")
-                    .expect("template")
-                    .progress_chars("=> "),
-            );
-            round.set_prefix("campaign");
+            let round = multi.add(round_bar(snap.max_rounds));
             round.set_position(u64::from(snap.rounds_done));
             Bars {
                 multi,
@@ -140,6 +137,9 @@ impl Monitor {
         if inner.quiet {
             return;
         }
+        // Lines quote workers' errors and stderr: no control character reaches the
+        // terminal raw.
+        let text = crate::out::visible(text);
         match &inner.bars {
             Some(b) => b.multi.suspend(|| eprintln!("{text}")),
             None => eprintln!("{text}"),
@@ -196,16 +196,7 @@ impl Monitor {
                     if let Some(old) = b.stage.take() {
                         old.finish_and_clear();
                     }
-                    let bar = b.multi.add(ProgressBar::new(u64::from(*tasks)));
-                    bar.set_style(
-                        ProgressStyle::with_template(
-                            "{prefix:>8} [{bar:30}] {pos}/{len} tasks  {msg}",
-                        )
-                        .expect("template")
-                        .progress_chars("=> "),
-                    );
-                    bar.set_prefix(stage.chars().take(8).collect::<String>());
-                    b.stage = Some(bar);
+                    b.stage = Some(b.multi.add(stage_bar(stage, *tasks)));
                     None
                 } else {
                     Some(format!("round {round}: stage {stage} ({tasks} tasks)"))
@@ -251,14 +242,24 @@ impl Monitor {
                 new_states,
                 states,
                 energy_evals,
+                cumulative_energy_evals,
             } => {
                 snap.rounds_done = *round;
                 snap.states = *states;
+                snap.energy_evals = *cumulative_energy_evals;
                 tracing::info!(round, new_states, states, energy_evals, "round done");
-                let msg = format!("round {round} done: {new_states} new states, {states} in the catalogue, {energy_evals} energy evaluations");
+                let msg = round_done_line(
+                    *round,
+                    *new_states,
+                    *states,
+                    *energy_evals,
+                    *cumulative_energy_evals,
+                );
                 if let Some(b) = inner.bars.as_ref() {
                     b.round.set_position(u64::from(*round));
-                    b.round.set_message(format!("{states} states"));
+                    b.round.set_message(format!(
+                        "{states} states, {cumulative_energy_evals} energy evaluations in all rounds"
+                    ));
                 }
                 Some(msg)
             }
@@ -316,5 +317,119 @@ impl Monitor {
         if let Err(e) = snapshot::write_json(&snapshot::path(&self.snapshot_dir), &snap) {
             tracing::warn!(error = %e, "cannot write the status snapshot");
         }
+    }
+}
+
+/// The campaign's bar: rounds done of the limit, the time since this run started, and
+/// (as its message) the catalogue's size and the evaluations of all rounds.
+fn round_bar(max_rounds: u32) -> ProgressBar {
+    let bar = ProgressBar::new(u64::from(max_rounds));
+    bar.set_style(
+        ProgressStyle::with_template(
+            "{prefix:>8} [{bar:30}] {pos}/{len} rounds  {elapsed_precise} elapsed  {msg}",
+        )
+        .expect("template")
+        .progress_chars("=> "),
+    );
+    bar.set_prefix("campaign");
+    bar
+}
+
+/// A stage's bar, labelled with the stage's whole name: `{prefix:>8}` pads a short name
+/// and never cuts a long one (`local+langevin` once showed as `local+la`).
+fn stage_bar(stage: &str, tasks: u32) -> ProgressBar {
+    let bar = ProgressBar::new(u64::from(tasks));
+    bar.set_style(
+        ProgressStyle::with_template("{prefix:>8} [{bar:30}] {pos}/{len} tasks  {msg}")
+            .expect("template")
+            .progress_chars("=> "),
+    );
+    bar.set_prefix(stage.to_string());
+    bar
+}
+
+/// The line printed when a round is done; it says which evaluation count is the
+/// round's and which the campaign's.
+fn round_done_line(
+    round: u32,
+    new_states: u32,
+    states: u32,
+    evals: u64,
+    cumulative: u64,
+) -> String {
+    format!(
+        "round {round} done: {new_states} new states, {states} in the catalogue, {evals} energy evaluations this round ({cumulative} in all rounds)"
+    )
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_round_line_says_which_evaluation_count_is_which() {
+        assert_eq!(
+            round_done_line(3, 1, 4, 600, 1800),
+            "round 3 done: 1 new states, 4 in the catalogue, 600 energy evaluations this round (1800 in all rounds)"
+        );
+    }
+
+    /// A terminal that keeps what is written to it.
+    #[derive(Debug, Default, Clone)]
+    struct Screen(Arc<Mutex<String>>);
+
+    impl indicatif::TermLike for Screen {
+        fn width(&self) -> u16 {
+            120
+        }
+        fn move_cursor_up(&self, _: usize) -> std::io::Result<()> {
+            Ok(())
+        }
+        fn move_cursor_down(&self, _: usize) -> std::io::Result<()> {
+            Ok(())
+        }
+        fn move_cursor_right(&self, _: usize) -> std::io::Result<()> {
+            Ok(())
+        }
+        fn move_cursor_left(&self, _: usize) -> std::io::Result<()> {
+            Ok(())
+        }
+        fn write_line(&self, s: &str) -> std::io::Result<()> {
+            self.write_str(&format!("{s}\n"))
+        }
+        fn write_str(&self, s: &str) -> std::io::Result<()> {
+            self.0.lock().expect("screen").push_str(s);
+            Ok(())
+        }
+        fn clear_line(&self) -> std::io::Result<()> {
+            Ok(())
+        }
+        fn flush(&self) -> std::io::Result<()> {
+            Ok(())
+        }
+    }
+
+    /// What `bar` draws on a 120-column terminal.
+    fn drawn(bar: ProgressBar) -> String {
+        let screen = Screen::default();
+        bar.set_draw_target(ProgressDrawTarget::term_like(Box::new(screen.clone())));
+        bar.inc(1);
+        bar.tick();
+        let text = screen.0.lock().expect("screen").clone();
+        text
+    }
+
+    #[test]
+    fn a_long_stage_name_is_not_cut_in_the_progress_view() {
+        let text = drawn(stage_bar("local+langevin", 3));
+        assert!(text.contains("local+langevin [="), "{text:?}");
+        let text = drawn(stage_bar("walk", 3));
+        assert!(text.contains("    walk [="), "{text:?}");
+    }
+
+    #[test]
+    fn the_campaign_bar_shows_the_elapsed_time() {
+        let text = drawn(round_bar(10));
+        assert!(text.contains("1/10 rounds  00:00:00 elapsed"), "{text:?}");
     }
 }

@@ -27,6 +27,14 @@ pub const MAX_ARRAY_BYTES: u64 = 1 << 30;
 /// The largest `result.json` tarn reads.
 pub const MAX_RESULT_BYTES: u64 = 16 << 20;
 
+/// The most metrics one `result.json` may report: they are stored with the task, summed
+/// into the round's table and printed by `tarn rounds` (900,000 of them once made a run
+/// take 35 s and 695 MB and every `tarn rounds` print a 9.9 MB line).
+pub const MAX_METRICS: usize = 1000;
+
+/// The longest metric name, in bytes.
+pub const MAX_METRIC_NAME_BYTES: usize = 128;
+
 /// The four stage roles of a round, in the order they run.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, Serialize, Deserialize)]
 #[serde(rename_all = "lowercase")]
@@ -180,6 +188,13 @@ pub fn read_result(task_dir: &Path, want: &Expectation) -> Result<ValidResult, R
     let result_path = task_dir.join(RESULT_PATH);
     let text = read_limited(&result_path, MAX_RESULT_BYTES)
         .map_err(|m| ResultError::new(RESULT_PATH, "(file)", m))?;
+    if let Some(message) = reported_failure(&text) {
+        return Err(ResultError::new(
+            RESULT_PATH,
+            "status",
+            format!("the worker reported failure: {message}"),
+        ));
+    }
     let parsed: ResultFile = serde_json::from_str(&text).map_err(|e| {
         ResultError::new(
             RESULT_PATH,
@@ -198,13 +213,14 @@ pub fn read_result(task_dir: &Path, want: &Expectation) -> Result<ValidResult, R
         ));
     }
     if parsed.status == ResultStatus::Failed {
-        let msg = parsed.message.unwrap_or_else(|| "(no message)".into());
+        // Read by `reported_failure` above; kept for a result it could not probe.
         return Err(ResultError::new(
             RESULT_PATH,
             "status",
-            format!("the worker reported failure: {msg}"),
+            "the worker reported failure: (no message)",
         ));
     }
+    check_metric_limits(&parsed.metrics)?;
     for (name, value) in &parsed.metrics {
         if let Some(v) = value {
             if !v.is_finite() {
@@ -251,6 +267,54 @@ pub fn read_result(task_dir: &Path, want: &Expectation) -> Result<ValidResult, R
         energy_evals: parsed.energy_evals,
         model,
     })
+}
+
+/// The worker's message when `result.json` says `"status": "failed"`. A failed result
+/// needs only `status` and `message`, so this is read before the strict parse (which
+/// would refuse it for a missing `energy_evals` and lose the message).
+fn reported_failure(text: &str) -> Option<String> {
+    #[derive(Deserialize)]
+    struct Probe {
+        status: Option<serde_json::Value>,
+        message: Option<serde_json::Value>,
+    }
+    let probe: Probe = serde_json::from_str(text).ok()?;
+    if probe.status? != "failed" {
+        return None;
+    }
+    Some(match probe.message {
+        Some(serde_json::Value::String(m)) => m,
+        Some(other) => other.to_string(),
+        None => "(no message)".into(),
+    })
+}
+
+/// Refuses more than [`MAX_METRICS`] metrics or a name longer than
+/// [`MAX_METRIC_NAME_BYTES`].
+fn check_metric_limits(metrics: &BTreeMap<String, Option<f64>>) -> Result<(), ResultError> {
+    if metrics.len() > MAX_METRICS {
+        return Err(ResultError::new(
+            RESULT_PATH,
+            "metrics",
+            format!(
+                "{} metrics exceed the limit of {MAX_METRICS} per result",
+                metrics.len()
+            ),
+        ));
+    }
+    if let Some(name) = metrics.keys().find(|n| n.len() > MAX_METRIC_NAME_BYTES) {
+        let shown: String = name.chars().take(32).collect();
+        return Err(ResultError::new(
+            RESULT_PATH,
+            "metrics",
+            format!(
+                "a name of {} bytes (`{}...`) exceeds the limit of {MAX_METRIC_NAME_BYTES} bytes",
+                name.len(),
+                shown.escape_debug()
+            ),
+        ));
+    }
+    Ok(())
 }
 
 /// Picks the JSON field name out of a serde error message where it names one.
@@ -501,4 +565,90 @@ fn check_finite(file: &str, name: &str, a: &Array) -> Result<(), ResultError> {
         ));
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn explore() -> Expectation {
+        Expectation {
+            role: Role::Explore,
+            dim: 2,
+            n_inputs: 0,
+            n_known: 0,
+        }
+    }
+
+    /// Validates `result` written as `out/result.json` of a fresh task directory, with
+    /// a valid explore output of one sample.
+    fn validate(result: &str) -> Result<ValidResult, ResultError> {
+        let dir = tempfile::tempdir().expect("temp dir");
+        std::fs::create_dir(dir.path().join("out")).expect("out");
+        let samples = Array::matrix(1, 2, vec![0.5, 1.5]);
+        let energies = Array::vector(vec![-1.0]);
+        std::fs::write(dir.path().join("out/s.npy"), npy::encode_f64(&samples)).expect("write");
+        std::fs::write(dir.path().join("out/e.npy"), npy::encode_f64(&energies)).expect("write");
+        std::fs::write(dir.path().join(RESULT_PATH), result).expect("write");
+        read_result(dir.path(), &explore())
+    }
+
+    fn ok_with_metrics(metrics: &serde_json::Map<String, serde_json::Value>) -> String {
+        serde_json::json!({
+            "protocol": 1, "status": "ok", "energy_evals": 1, "metrics": metrics,
+            "outputs": {"samples": "out/s.npy", "energies": "out/e.npy"},
+        })
+        .to_string()
+    }
+
+    #[test]
+    fn a_failed_result_needs_only_status_and_message() {
+        let e = validate(r#"{"status": "failed", "message": "no convergence in 50 steps"}"#)
+            .unwrap_err();
+        assert_eq!(
+            e.to_string(),
+            "out/result.json: status: the worker reported failure: no convergence in 50 steps"
+        );
+        let e = validate(r#"{"protocol": 1, "status": "failed"}"#).unwrap_err();
+        assert_eq!(
+            e.to_string(),
+            "out/result.json: status: the worker reported failure: (no message)"
+        );
+    }
+
+    #[test]
+    fn an_ok_result_still_needs_its_energy_evals() {
+        let text = r#"{"protocol": 1, "status": "ok", "outputs": {"samples": "out/s.npy", "energies": "out/e.npy"}}"#;
+        let e = validate(text).unwrap_err();
+        assert_eq!(e.field, "energy_evals", "{e}");
+    }
+
+    #[test]
+    fn metrics_are_capped_in_number_and_name_length() {
+        let many: serde_json::Map<_, _> = (0..=MAX_METRICS)
+            .map(|i| (format!("m{i}"), serde_json::json!(1.0)))
+            .collect();
+        let e = validate(&ok_with_metrics(&many)).unwrap_err();
+        assert_eq!(
+            e.to_string(),
+            "out/result.json: metrics: 1001 metrics exceed the limit of 1000 per result"
+        );
+        let at_cap: serde_json::Map<_, _> = many.into_iter().take(MAX_METRICS).collect();
+        assert_eq!(
+            validate(&ok_with_metrics(&at_cap)).unwrap().metrics.len(),
+            1000
+        );
+
+        let long = "x".repeat(MAX_METRIC_NAME_BYTES + 1);
+        let one: serde_json::Map<_, _> = [(long, serde_json::json!(2.0))].into_iter().collect();
+        let e = validate(&ok_with_metrics(&one)).unwrap_err();
+        assert!(
+            e.to_string()
+                .ends_with("a name of 129 bytes (`xxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxx...`) exceeds the limit of 128 bytes"),
+            "{e}"
+        );
+        let name = "y".repeat(MAX_METRIC_NAME_BYTES);
+        let one: serde_json::Map<_, _> = [(name, serde_json::json!(2.0))].into_iter().collect();
+        assert!(validate(&ok_with_metrics(&one)).is_ok());
+    }
 }

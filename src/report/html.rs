@@ -48,9 +48,6 @@ pub const MAX_LANDSCAPE_POINTS: usize = 4000;
 /// campaign, first and last included.
 pub const MAX_LANDSCAPE_ROUNDS: usize = 40;
 
-/// At most this many explore tasks of a round are read for the landscape.
-const MAX_TASKS_PER_ROUND: usize = 4;
-
 /// At most this many states get a free-energy line (those of lowest free energy).
 pub const MAX_FREE_ENERGY_TRACKS: usize = 10;
 
@@ -695,19 +692,49 @@ fn ess_section(c: &Context) -> anyhow::Result<String> {
 /// A map from one configuration (a row of `dim` coordinates) to its point in a plot.
 type Projection<'a> = &'a dyn Fn(&[f64]) -> (f64, f64);
 
+/// The explore samples a scatter draws, and how they were chosen.
+struct ScatterSamples {
+    /// (x, y, round) of each drawn sample.
+    points: Vec<(f64, f64, u32)>,
+    /// Rounds read (at most [`MAX_LANDSCAPE_ROUNDS`], spread over the campaign).
+    rounds: usize,
+    /// Whether some round had more explore tasks than points to spare, so that not
+    /// every walker is drawn.
+    walkers_thinned: bool,
+}
+
+impl ScatterSamples {
+    /// The caption's account of what is drawn: every walker of each round read, unless
+    /// a round had more walkers than its share of points.
+    fn caption(&self) -> String {
+        let walkers = if self.walkers_thinned {
+            "walkers evenly thinned in rounds with more walkers than points to spare, "
+        } else {
+            "every walker of each round, "
+        };
+        format!(
+            "{} samples from {} round(s): {walkers}each walker's samples evenly thinned (at most {MAX_LANDSCAPE_POINTS} in all).",
+            self.points.len(),
+            self.rounds
+        )
+    }
+}
+
 /// Explore samples for the landscape: at most [`MAX_LANDSCAPE_ROUNDS`] rounds spread over
-/// the campaign, at most [`MAX_TASKS_PER_ROUND`] explore tasks of each, and evenly
-/// strided samples of each task, [`MAX_LANDSCAPE_POINTS`] in all, each row of `dim`
-/// coordinates mapped to a point by `project`.
+/// the campaign, every explore task (walker) of each (thinned only when a round has
+/// more walkers than its share of points), and evenly strided samples of each task,
+/// [`MAX_LANDSCAPE_POINTS`] in all, each row of `dim` coordinates mapped to a point by
+/// `project`.
 fn landscape_samples(
     store: &Store,
     rounds: &[RoundRecord],
     dim: usize,
     project: Projection,
-) -> anyhow::Result<Vec<(f64, f64, u32)>> {
+) -> anyhow::Result<ScatterSamples> {
     let picked = plots::thin(rounds.len(), MAX_LANDSCAPE_ROUNDS);
     let per_round = MAX_LANDSCAPE_POINTS / picked.len().max(1);
     let mut out = Vec::new();
+    let mut walkers_thinned = false;
     for &ri in &picked {
         let round = rounds[ri].round;
         let tasks: Vec<TaskRecord> = store
@@ -721,8 +748,9 @@ fn landscape_samples(
                         .is_some_and(|s| s.len() == 2 && s[0] > 0 && s[1] == dim)
             })
             .collect();
-        let chosen = plots::thin(tasks.len(), MAX_TASKS_PER_ROUND);
-        let per_task = per_round / chosen.len().max(1);
+        let chosen = plots::thin(tasks.len(), per_round.max(1));
+        walkers_thinned |= chosen.len() < tasks.len();
+        let per_task = (per_round / chosen.len().max(1)).max(1);
         for &ti in &chosen {
             let t = &tasks[ti];
             let key = keys::task_suffix(t.round, t.stage_index, t.walker);
@@ -740,7 +768,11 @@ fn landscape_samples(
             }
         }
     }
-    Ok(out)
+    Ok(ScatterSamples {
+        points: out,
+        rounds: picked.len(),
+        walkers_thinned,
+    })
 }
 
 /// The plotted rectangle: the samples' and minima's extent, padded by 8 %.
@@ -808,14 +840,15 @@ fn landscape_section(store: &Store, c: &Context) -> anyhow::Result<String> {
         );
         return Ok(out);
     }
-    let samples = landscape_samples(store, &c.rounds, 2, &|r| (r[0], r[1]))?;
+    let scatter = landscape_samples(store, &c.rounds, 2, &|r| (r[0], r[1]))?;
+    let samples = &scatter.points;
     let minima: Vec<(u32, f64, f64)> = c
         .states
         .iter()
         .filter(|s| s.representative.len() == 2)
         .map(|s| (s.id, s.representative[0], s.representative[1]))
         .collect();
-    let (bx, by) = landscape_box(&samples, &minima);
+    let (bx, by) = landscape_box(samples, &minima);
     let kt = c.campaign.as_ref().map_or(1.0, |k| k.kt);
     let grid = if samples.is_empty() && minima.is_empty() {
         None
@@ -833,7 +866,7 @@ fn landscape_section(store: &Store, c: &Context) -> anyhow::Result<String> {
         &Landscape {
             grid: grid.as_ref(),
             levels: &levels,
-            samples: &samples,
+            samples,
             minima: &minima,
             rounds: (r0, r1),
             x: bx,
@@ -858,11 +891,7 @@ fn landscape_section(store: &Store, c: &Context) -> anyhow::Result<String> {
         }
         _ => "No contour lines: the system's energy could not be evaluated here.".into(),
     };
-    let caption = format!(
-        "{} samples from {} round(s) (at most {MAX_LANDSCAPE_POINTS}, evenly thinned). {contours}",
-        samples.len(),
-        plots::thin(c.rounds.len(), MAX_LANDSCAPE_ROUNDS).len()
-    );
+    let caption = format!("{} {contours}", scatter.caption());
     let empty = (samples.is_empty() && minima.is_empty()).then_some("no sample stored yet");
     close_round_scatter(
         &mut out,
@@ -926,7 +955,8 @@ fn ramachandran_section(
     mut out: String,
 ) -> anyhow::Result<String> {
     let project = |r: &[f64]| (dihedral_degrees(r, pair[0]), dihedral_degrees(r, pair[1]));
-    let samples = landscape_samples(store, &c.rounds, dim, &project)?;
+    let scatter = landscape_samples(store, &c.rounds, dim, &project)?;
+    let samples = &scatter.points;
     let minima: Vec<(u32, f64, f64)> = c
         .states
         .iter()
@@ -947,7 +977,7 @@ fn ramachandran_section(
         &Landscape {
             grid: None,
             levels: &[],
-            samples: &samples,
+            samples,
             minima: &minima,
             rounds: (r0, r1),
             x: (-180.0, 180.0),
@@ -959,11 +989,7 @@ fn ramachandran_section(
         },
     )?;
     out.push_str("<p class=\"lead\">A Ramachandran scatter: explore samples at the first two dihedrals of the dedup fingerprint, coloured by the round that drew them; circles mark the catalogue's minima. The map is a thinned picture, not the data: use <code>tarn export</code> for every sample.</p>\n");
-    let caption = format!(
-        "{} samples from {} round(s) (at most {MAX_LANDSCAPE_POINTS}, evenly thinned); both axes wrap at ±180°.",
-        samples.len(),
-        plots::thin(c.rounds.len(), MAX_LANDSCAPE_ROUNDS).len()
-    );
+    let caption = format!("{} Both axes wrap at ±180°.", scatter.caption());
     let empty = (samples.is_empty() && minima.is_empty()).then_some("no sample stored yet");
     close_round_scatter(
         &mut out,

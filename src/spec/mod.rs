@@ -8,6 +8,7 @@
 //! kinds, shapes) and builds the domain type. Every error carries the key path and,
 //! where the key exists in the file, its line, column and the line itself.
 
+mod programs;
 pub mod render;
 pub mod templates;
 
@@ -637,7 +638,54 @@ fn syntax_message(m: &str) -> String {
 }
 
 fn serde_message(m: &str) -> String {
-    name_empty_key(m.lines().next().unwrap_or(m).trim())
+    with_suggestion(&name_empty_key(m.lines().next().unwrap_or(m).trim()))
+}
+
+/// Appends "did you mean `x`?" to serde's "unknown field `y`, expected ..." when one of
+/// the expected keys is within a small edit distance of the unknown one (a third of its
+/// length, at least 1).
+fn with_suggestion(m: &str) -> String {
+    let Some(unknown) = backticked_after(m, "unknown field `") else {
+        return m.to_string();
+    };
+    let Some(expected) = m.find("expected").map(|i| &m[i..]) else {
+        return m.to_string();
+    };
+    let limit = (unknown.chars().count() / 3).max(1);
+    let best = backticked(expected)
+        .into_iter()
+        .map(|k| (strsim::levenshtein(unknown, k), k))
+        .filter(|(d, _)| *d <= limit)
+        .min_by_key(|(d, _)| *d);
+    match best {
+        Some((_, k)) => format!("{m}; did you mean `{k}`?"),
+        None => m.to_string(),
+    }
+}
+
+/// The text between the backticks that follow `prefix`'s first occurrence.
+fn backticked_after<'a>(m: &'a str, prefix: &str) -> Option<&'a str> {
+    let rest = &m[m.find(prefix)? + prefix.len()..];
+    Some(&rest[..rest.find('`')?])
+}
+
+/// Every backticked word of `m`, in order.
+fn backticked(m: &str) -> Vec<&str> {
+    m.split('`').skip(1).step_by(2).collect()
+}
+
+/// The key of a stage's `params` that a kind's error message is about: the unknown
+/// field, the invalid parameter, or the leading `key:` of a type error, when `params`
+/// has that key.
+fn params_key_of<'a>(message: &'a str, params: &serde_json::Value) -> Option<&'a str> {
+    let key = backticked_after(message, "unknown field `")
+        .or_else(|| backticked_after(message, "invalid parameter `"))
+        .or_else(|| {
+            let head = message.split(": ").next()?;
+            let first = head.split(['.', '[']).next()?;
+            Some(first)
+        })?;
+    params.get(key).is_some().then_some(key)
 }
 
 /// serde names an unknown empty key (`"" = 1`) as "unknown field ``", which reads as a
@@ -690,6 +738,23 @@ fn span_of(doc: &toml_edit::ImDocument<String>, path: &str) -> Option<Range<usiz
         }
     }
     best
+}
+
+/// The span of `key`'s name in the table at `table_path`.
+fn key_span(
+    doc: &toml_edit::ImDocument<String>,
+    table_path: &str,
+    key: &str,
+) -> Option<Range<usize>> {
+    let mut item: &toml_edit::Item = doc.as_item();
+    for seg in path_segments(table_path) {
+        item = match seg {
+            Seg::Key(k) => item.get(k)?,
+            Seg::Index(i) => item.get(i)?,
+        };
+    }
+    let (k, _) = item.as_table_like()?.get_key_value(key)?;
+    k.span()
 }
 
 fn item_span(item: &toml_edit::Item) -> Option<Range<usize>> {
@@ -994,11 +1059,34 @@ fn check_builtin_params(
     let spec: crate::physics::models::SystemSpec =
         serde_json::from_value(system.table.clone()).expect("validated system");
     crate::workers::check_params(kind, &stage.params, &spec, system.dim, kt).map_err(|e| {
-        ctx.err(
-            &format!("{path}.params"),
-            format!("{kind}: {}", name_empty_key(&e)),
-        )
+        // Point at the key's own line when the message names a key of the table.
+        let table = format!("{path}.params");
+        let message = format!("{kind}: {}", with_suggestion(&name_empty_key(&e)));
+        let Some(key) = params_key_of(&e, &stage.params) else {
+            return ctx.err(&table, message);
+        };
+        let key_path = format!("{table}.{}", toml_key(key));
+        // An unknown key is pointed at by its name, a bad value by the value.
+        let span = if e.starts_with("unknown field") {
+            key_span(ctx.doc, &table, key)
+        } else {
+            span_of(ctx.doc, &key_path)
+        };
+        SpecError::at(ctx.file, ctx.source, &key_path, span, message)
     })
+}
+
+/// A key as a segment of a key path: bare when TOML allows it bare, else quoted.
+fn toml_key(key: &str) -> String {
+    let bare = !key.is_empty()
+        && key
+            .chars()
+            .all(|c| c.is_ascii_alphanumeric() || c == '_' || c == '-');
+    if bare {
+        key.to_string()
+    } else {
+        format!("{key:?}")
+    }
 }
 
 /// The built-in kinds that can fill `role`.

@@ -52,7 +52,7 @@ fn broken_files_get_exact_messages() {
         (
             "walkers = 2",
             "walker = 2",
-            "c.toml:14:1: explore[0].walker: unknown field `walker`, expected one of `name`, `kind`, `command`, `walkers`, `restart`, `timeout_seconds`, `pool_limit`, `params`, `slurm`\n   |\n14 | walker = 2\n   | ^^^^^^",
+            "c.toml:14:1: explore[0].walker: unknown field `walker`, expected one of `name`, `kind`, `command`, `walkers`, `restart`, `timeout_seconds`, `pool_limit`, `params`, `slurm`; did you mean `walkers`?\n   |\n14 | walker = 2\n   | ^^^^^^",
         ),
         (
             "walkers = 2",
@@ -114,6 +114,32 @@ fn broken_files_get_exact_messages() {
             "name = \"dedup\"",
             "c.toml:16:1: dedup.name: stage name 'dedup' (this stage's default name) is used twice; give each stage its own name\n   |\n16 | [dedup]\n   | ^^^^^^^",
         ),
+        // Errors inside a stage's params point at the key's own line.
+        (
+            "kind = \"hold\"\nwalkers = 2",
+            "kind = \"langevin\"\nwalkers = 2\n[explore.params]\ndt = 0.01\nn_step = 10",
+            "c.toml:17:1: explore[0].params.n_step: langevin: unknown field `n_step`, expected one of `n_steps`, `dt`, `friction`, `save_stride`, `temperature_factor`; did you mean `n_steps`?\n   |\n17 | n_step = 10\n   | ^^^^^^",
+        ),
+        (
+            "kind = \"hold\"\nwalkers = 2",
+            "kind = \"langevin\"\nwalkers = 2\n[explore.params]\ncolour = 1",
+            "c.toml:16:1: explore[0].params.colour: langevin: unknown field `colour`, expected one of `n_steps`, `dt`, `friction`, `save_stride`, `temperature_factor`\n   |\n16 | colour = 1\n   | ^^^^^^",
+        ),
+        (
+            "kind = \"hold\"\nwalkers = 2",
+            "kind = \"langevin\"\nwalkers = 2\n[explore.params]\nn_steps = 10\ndt = -1.0",
+            "c.toml:17:6: explore[0].params.dt: langevin: invalid parameter `dt`: must be positive\n   |\n17 | dt = -1.0\n   |      ^^^^",
+        ),
+        (
+            "kind = \"hold\"\nwalkers = 2",
+            "kind = \"metropolis\"\nwalkers = 2\n[explore.params]\nn_steps = \"lots\"",
+            "c.toml:16:11: explore[0].params.n_steps: metropolis: n_steps: invalid type: string \"lots\", expected u64\n   |\n16 | n_steps = \"lots\"\n   |           ^^^^^^",
+        ),
+        (
+            "[dedup]\nkind = \"quench\"",
+            "[dedup]\nkind = \"quench\"\n[dedup.params]\nenergy_tolerence = 1e-6",
+            "c.toml:19:1: dedup.params.energy_tolerence: quench: unknown field `energy_tolerence`, expected one of `force_tolerance`, `max_steps`, `energy_tolerance`, `fingerprint_tolerance`, `max_per_state`, `fingerprint`, `dt_start`, `dt_max`, `max_step`; did you mean `energy_tolerance`?\n   |\n19 | energy_tolerence = 1e-6\n   | ^^^^^^^^^^^^^^^^",
+        ),
     ];
     let mut wrong = Vec::new();
     for (i, (from, to, want)) in table.iter().enumerate() {
@@ -161,14 +187,14 @@ fn built_in_params_are_checked_before_anything_runs() {
         "kind = \"langevin\"\nwalkers = 2\n[explore.params]\nn_step = 10",
     );
     let e = parse(&typo).unwrap_err().to_string();
-    assert!(e.starts_with("c.toml:15:1: explore[0].params: langevin: unknown field `n_step`, expected one of `n_steps`"), "{e}");
+    assert!(e.starts_with("c.toml:16:1: explore[0].params.n_step: langevin: unknown field `n_step`, expected one of `n_steps`"), "{e}");
     let range = GOOD.replace(
         "kind = \"hold\"\nwalkers = 2",
         "kind = \"langevin\"\nwalkers = 2\n[explore.params]\ndt = -1.0",
     );
     let e = parse(&range).unwrap_err().to_string();
     assert!(
-        e.contains("explore[0].params: langevin: invalid parameter `dt`: must be positive"),
+        e.contains("explore[0].params.dt: langevin: invalid parameter `dt`: must be positive"),
         "{e}"
     );
     let wrong_type = GOOD.replace(
@@ -178,7 +204,7 @@ fn built_in_params_are_checked_before_anything_runs() {
     let e = parse(&wrong_type).unwrap_err().to_string();
     assert!(
         e.contains(
-            "explore[0].params: metropolis: n_steps: invalid type: string \"lots\", expected u64"
+            "explore[0].params.n_steps: metropolis: n_steps: invalid type: string \"lots\", expected u64"
         ),
         "{e}"
     );
@@ -205,4 +231,78 @@ fn retry_delays_grow_are_capped_and_jitter_is_seeded() {
     assert_ne!(j.delay(3, 42), j.delay(3, 43));
     let v = j.delay(3, 42).as_secs_f64();
     assert!((1.0..=3.0).contains(&v), "{v}");
+}
+
+#[test]
+fn a_command_whose_program_cannot_run_is_refused_naming_its_key() {
+    use std::os::unix::fs::PermissionsExt;
+    let dir = tempfile::tempdir().expect("temp dir");
+    let base = dir.path();
+    std::fs::write(base.join("plain.py"), "print(1)\n").expect("write");
+    std::fs::write(base.join("run.sh"), "#!/bin/sh\n").expect("write");
+    std::fs::set_permissions(base.join("run.sh"), std::fs::Permissions::from_mode(0o755))
+        .expect("chmod");
+    let with_command = |cmd: &str| {
+        GOOD.replace(
+            "kind = \"hold\"\nwalkers = 2",
+            &format!("command = {cmd}\nwalkers = 2"),
+        )
+    };
+    let check = |cmd: &str| {
+        let c = Campaign::parse("c.toml", &with_command(cmd), base).expect("parses");
+        c.check_programs("c.toml").map_err(|e| e.to_string())
+    };
+    // Runnable: an interpreter on PATH, an executable file beside the campaign file.
+    assert_eq!(check(r#"["python3", "plain.py"]"#), Ok(()));
+    assert_eq!(check(r#"["./run.sh"]"#), Ok(()));
+    let table: &[(&str, String)] = &[
+        (
+            r#"["no-such-program-tarn", "x"]"#,
+            "c.toml:13:12: explore[0].command: program 'no-such-program-tarn' is not found on PATH (give its path, or install it)\n   |\n13 | command = [\"no-such-program-tarn\", \"x\"]\n   |            ^^^^^^^^^^^^^^^^^^^^^^".into(),
+        ),
+        (
+            r#"["./plain.py"]"#,
+            format!("c.toml:13:12: explore[0].command: program '{}' is not executable (make it so with chmod +x, or name its interpreter first, e.g. [\"python3\", \"./plain.py\"])\n   |\n13 | command = [\"./plain.py\"]\n   |            ^^^^^^^^^^^^", base.join("./plain.py").display()),
+        ),
+        (
+            r#"["bin/missing"]"#,
+            format!("c.toml:13:12: explore[0].command: program 'bin/missing' does not exist: a relative path is looked up in the campaign file's directory ({})\n   |\n13 | command = [\"bin/missing\"]\n   |            ^^^^^^^^^^^^^", base.join("bin/missing").display()),
+        ),
+        (
+            r#"["plain.py"]"#,
+            "c.toml:13:12: explore[0].command: program 'plain.py' is not found on PATH; for the file next to the campaign file write \"./plain.py\"\n   |\n13 | command = [\"plain.py\"]\n   |            ^^^^^^^^^^".into(),
+        ),
+    ];
+    for (cmd, want) in table {
+        assert_eq!(check(cmd).unwrap_err(), *want, "{cmd}");
+    }
+    // The dedup stage and an external model's program are checked too.
+    let dedup = GOOD.replace(
+        "[dedup]\nkind = \"quench\"",
+        "[dedup]\ncommand = [\"/nonexistent/dedup\"]",
+    );
+    let e = Campaign::parse("c.toml", &dedup, base)
+        .expect("parses")
+        .check_programs("c.toml")
+        .unwrap_err()
+        .to_string();
+    assert!(
+        e.starts_with("c.toml:17:12: dedup.command: program '/nonexistent/dedup' does not exist\n"),
+        "{e}"
+    );
+    let external = GOOD.replace(
+        "model = \"muller-brown\"",
+        "model = \"external\"\ncommand = [\"/nonexistent/energy\"]\ndim = 2",
+    );
+    let e = Campaign::parse("c.toml", &external, base)
+        .expect("parses")
+        .check_programs("c.toml")
+        .unwrap_err()
+        .to_string();
+    assert!(
+        e.starts_with(
+            "c.toml:7:12: system.command: program '/nonexistent/energy' does not exist\n"
+        ),
+        "{e}"
+    );
 }

@@ -147,6 +147,10 @@ impl Drop for CopyDir {
 
 /// Key builders; see the layout table in the module doc.
 pub mod keys {
+    /// The store's creation facts ([`super::Meta`]).
+    pub fn meta() -> Vec<u8> {
+        b"mmeta".to_vec()
+    }
     pub fn round(r: u32) -> Vec<u8> {
         let mut k = vec![b'r'];
         k.extend_from_slice(&r.to_be_bytes());

@@ -13,6 +13,9 @@ pub struct ExternalProcess {
     client: Option<ExternalClient<ChildStdout, ChildStdin>>,
     child: Child,
     dim: usize,
+    /// Where the program's standard error lands (the task's `stderr.log`), named in
+    /// errors: a program that died says why there, not on the pipe.
+    stderr_log: Option<std::path::PathBuf>,
 }
 
 impl ExternalProcess {
@@ -39,6 +42,8 @@ impl ExternalProcess {
             client: Some(client),
             child,
             dim,
+            stderr_log: std::env::var_os("TARN_TASK_DIR")
+                .map(|d| std::path::PathBuf::from(d).join("stderr.log")),
         })
     }
 }
@@ -55,7 +60,9 @@ impl EnergyModel for ExternalProcess {
         forces: Option<&mut [f64]>,
     ) -> Result<(), EnergyError> {
         match &self.client {
-            Some(c) => c.evaluate(x, energy, forces),
+            Some(c) => c
+                .evaluate(x, energy, forces)
+                .map_err(|e| with_stderr_log(e, self.stderr_log.as_deref())),
             None => Err(EnergyError::External(
                 "the energy program was already stopped".into(),
             )),
@@ -64,6 +71,18 @@ impl EnergyModel for ExternalProcess {
 
     fn particle_dims(&self) -> Option<usize> {
         self.client.as_ref().and_then(|c| c.particle_dims())
+    }
+}
+
+/// Names the program's stderr log in an error of the program itself (a closed pipe,
+/// bad framing, a reported failure), where its own words about the cause are.
+fn with_stderr_log(e: EnergyError, log: Option<&std::path::Path>) -> EnergyError {
+    match (e, log) {
+        (EnergyError::External(m), Some(log)) => EnergyError::External(format!(
+            "{m}; the energy program's standard error is in {}",
+            log.display()
+        )),
+        (e, _) => e,
     }
 }
 

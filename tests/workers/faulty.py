@@ -9,6 +9,12 @@ From round 2 on it misbehaves as the mode file named by argv[1] says:
   escape  an output path outside the task directory
   slow    sleep 1 s, then behave well (in every round)
   orphan  start a child that sleeps 30 s, then behave well
+  ansi    write terminal escape sequences to stderr, then exit with status 3
+  ansifail   report failure in a result with only status and a message holding
+             escape sequences
+  failed  report failure in a result with only status and message
+  ansimetric behave well, with a metric whose name holds escape sequences
+  metrics    behave well, with 1001 metrics (one more than tarn accepts)
 """
 import json
 import os
@@ -31,10 +37,18 @@ def energy(p):
     return float(np.sum(A * np.exp(a * dx * dx + b * dx * dy + c * dy * dy)))
 
 
-def write_result(outputs):
-    res = {"protocol": 1, "status": "ok", "outputs": outputs, "metrics": {}, "energy_evals": 1}
+ESCAPES = "\x1b]0;pwned\x07\x1b[2J\x1b[31m"
+
+
+def write_result(outputs, metrics=None):
+    res = {"protocol": 1, "status": "ok", "outputs": outputs, "metrics": metrics or {}, "energy_evals": 1}
     with open("out/result.json", "w") as f:
         json.dump(res, f)
+
+
+def write_failure(message):
+    with open("out/result.json", "w") as f:
+        json.dump({"status": "failed", "message": message}, f)
 
 
 def main():
@@ -67,9 +81,23 @@ def main():
             return
         if mode == "orphan":
             subprocess.Popen(["sleep", "30"])
+        if mode == "ansi":
+            print("worker: " + ESCAPES + "red alert", file=sys.stderr)
+            sys.exit(3)
+        if mode == "ansifail":
+            write_failure("no convergence " + ESCAPES + "in 50 steps")
+            return
+        if mode == "failed":
+            write_failure("no convergence in 50 steps")
+            return
+    metrics = {}
+    if mode == "ansimetric":
+        metrics = {"accept" + ESCAPES: 0.5}
+    if mode == "metrics" and task["round"] >= 2:
+        metrics = {"m%d" % i: 1.0 for i in range(1001)}
     np.save("out/samples.npy", x)
     np.save("out/energies.npy", e)
-    write_result({"samples": "out/samples.npy", "energies": "out/energies.npy"})
+    write_result({"samples": "out/samples.npy", "energies": "out/energies.npy"}, metrics)
 
 
 if __name__ == "__main__":

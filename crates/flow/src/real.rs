@@ -92,6 +92,18 @@ pub fn exp_f32(x: f32) -> f32 {
     p * f32::from_bits(bits)
 }
 
+/// Whether the CPU has every feature the AVX-512 copy of a `multiversion!` function is
+/// compiled with (`avx512f,avx512vl,avx512dq,avx2,fma`): a CPU with AVX-512F alone
+/// (Knights Landing has F without VL and DQ) must not run it.
+#[cfg(target_arch = "x86_64")]
+pub(crate) fn has_avx512_v4() -> bool {
+    std::is_x86_feature_detected!("avx512f")
+        && std::is_x86_feature_detected!("avx512vl")
+        && std::is_x86_feature_detected!("avx512dq")
+        && std::is_x86_feature_detected!("avx2")
+        && std::is_x86_feature_detected!("fma")
+}
+
 /// Defines `pub(crate) fn $name<T: Real>(args)` that runs the `#[inline(always)]`
 /// function `$inner` inside a copy compiled for AVX-512 or AVX2+FMA when the CPU has it
 /// (checked at run time, a cached flag), so that generic element-wise loops are
@@ -113,8 +125,9 @@ macro_rules! multiversion {
                 unsafe fn v3<$T: $crate::real::Real>($($arg: $ty),*) $(-> $ret)? {
                     $inner::<$T>($($arg),*)
                 }
-                if std::is_x86_feature_detected!("avx512f") {
-                    // SAFETY: the CPU supports AVX-512F (checked just above).
+                if $crate::real::has_avx512_v4() {
+                    // SAFETY: the CPU supports every feature `v4` enables (AVX-512F,
+                    // VL and DQ, AVX2, FMA; checked just above).
                     return unsafe { v4::<$T>($($arg),*) };
                 }
                 if std::is_x86_feature_detected!("avx2") && std::is_x86_feature_detected!("fma") {
@@ -797,5 +810,42 @@ mod tests {
             .iter()
             .zip(&want)
             .all(|(x, y)| (x - 1.0 - y).abs() < 1e-12));
+    }
+
+    /// Every CPU feature a `#[target_feature(enable = ...)]` in this crate turns on is
+    /// checked at run time by some guard in the same file: an unchecked feature (the
+    /// AVX-512 copy of `multiversion!` once enabled VL and DQ behind a check of F alone)
+    /// is an illegal instruction on a CPU without it.
+    #[test]
+    fn every_enabled_cpu_feature_is_detected_before_use() {
+        for (file, text) in [
+            ("real.rs", include_str!("real.rs")),
+            ("fused.rs", include_str!("fused.rs")),
+        ] {
+            let enabled = quoted_after(text, "#[target_feature(enable = ");
+            let detected = quoted_after(text, "is_x86_feature_detected!(");
+            assert!(!enabled.is_empty(), "{file}: no target_feature found");
+            for list in &enabled {
+                for feature in list.split(',') {
+                    assert!(
+                        detected.iter().any(|d| d == feature),
+                        "{file}: `{feature}` is enabled but never detected"
+                    );
+                }
+            }
+        }
+    }
+
+    /// The feature-list literals that directly follow each occurrence of `prefix`.
+    fn quoted_after(text: &str, prefix: &str) -> Vec<String> {
+        text.match_indices(prefix)
+            .filter_map(|(i, _)| {
+                let rest = text[i + prefix.len()..].strip_prefix('"')?;
+                Some(rest[..rest.find('"')?].to_string())
+            })
+            // A feature list is plain words; this test's own source mentions the
+            // prefixes too, followed by other text.
+            .filter(|s| !s.is_empty() && s.chars().all(|c| c.is_ascii_alphanumeric() || c == ','))
+            .collect()
     }
 }
