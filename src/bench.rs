@@ -12,6 +12,7 @@ pub const BENCHES: &[(&str, &str)] = &[
     ("engine", "orchestration overhead per task, reopen time of a 1000-round store, engine memory"),
     ("energy", "energy-and-force throughput (LJ13 3-D, phi4 16x16) against the measured f64 peak, and an external model through its pipe"),
     ("flow", "RealNVP training and sampling throughput against the measured f32 GEMM peak"),
+    ("lattice", "effective samples per CPU-second: the phi4 8x8 flow of workflows/phi4-flow.toml against HMC"),
     ("discovery", "energy evaluations to every state and to converged free energies, against configuration-space Metropolis and Langevin"),
 ];
 
@@ -21,6 +22,7 @@ pub fn run(what: &str, json: bool, tasks: u32) -> anyhow::Result<u8> {
         "engine" => crate::bench_engine::run(json, tasks),
         "energy" => energy(json),
         "flow" => flow(json),
+        "lattice" => crate::bench_lattice::run(json),
         other => {
             let names: Vec<&str> = BENCHES.iter().map(|(n, _)| *n).collect();
             anyhow::bail!(

@@ -6,6 +6,7 @@
 pub mod bench;
 mod bench_discovery;
 pub mod bench_engine;
+mod bench_lattice;
 pub mod cli;
 pub mod engine;
 pub mod executor;

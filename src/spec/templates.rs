@@ -40,6 +40,11 @@ pub const TEMPLATES: &[Template] = &[
         summary: "a ferromagnetic film (8x8 lattice phi^4, broken phase): metadynamics on the magnetisation",
         text: include_str!("../../workflows/phi4-lattice.toml"),
     },
+    Template {
+        name: "phi4-flow",
+        summary: "a lattice field (8x8 phi^4, symmetric phase) sampled by a checkerboard flow: ESS and reweighted averages",
+        text: include_str!("../../workflows/phi4-flow.toml"),
+    },
 ];
 
 #[cfg(test)]

@@ -44,9 +44,9 @@ struct ReweightParams {
     /// Whether to assign samples to states by quench and estimate state free energies
     /// (false: only ESS, ln Z, observables and the profile, at no quench cost).
     assign_states: bool,
-    /// The effective-sample floor: below it, observables are reported as not estimated
-    /// (metric `not_estimated = 1`), since a mean over a handful of effective samples is
-    /// not an estimate whatever its error bar says.
+    /// The effective-sample floor: below it, ln Z's error, the observables and the state
+    /// free energies are not reported (metric `not_estimated = 1`), since an estimate
+    /// from a handful of effective samples is not an estimate whatever its error bar says.
     min_ess: f64,
 }
 
@@ -193,9 +193,17 @@ pub fn reweight(task: &Task) -> Result<Output, String> {
     out.metrics
         .insert("ess_fraction".into(), Some(logz.ess / n));
     out.metrics.insert("log_z".into(), Some(logz.log_z));
-    out.metrics.insert("log_z_err".into(), logz.log_z_err);
     let fin_w: Vec<f64> = finite.iter().map(|&i| g.log_weight[i]).collect();
-    observables(&p, model.as_ref(), &xs, &fin_w, logz.ess, &mut out)?;
+    if logz.ess < p.min_ess {
+        // Below the floor nothing reweighted is an estimate: no error bar (the delta
+        // method's ±1 at ESS = 1 is its ceiling, not an error), no observables, no state
+        // free energies; the metric says why.
+        out.metrics.insert("log_z_err".into(), None);
+        out.metrics.insert("not_estimated".into(), Some(1.0));
+        return Ok(out);
+    }
+    out.metrics.insert("log_z_err".into(), logz.log_z_err);
+    observables(&p, model.as_ref(), &xs, &fin_w, &mut out)?;
     if p.assign_states {
         let matching = Matching {
             force_tolerance: p.force_tolerance,
@@ -239,23 +247,14 @@ pub fn reweight(task: &Task) -> Result<Output, String> {
     Ok(out)
 }
 
-/// The reweighted means of the stage's observables with delta-method errors, or, below
-/// the effective-sample floor, `not_estimated = 1` and no means.
+/// The reweighted means of the stage's observables with delta-method errors.
 fn observables(
     p: &ReweightParams,
     model: &dyn EnergyModel,
     xs: &[f64],
     log_w: &[f64],
-    ess: f64,
     out: &mut Output,
 ) -> Result<(), String> {
-    if p.observables.is_empty() {
-        return Ok(());
-    }
-    if ess < p.min_ess {
-        out.metrics.insert("not_estimated".into(), Some(1.0));
-        return Ok(());
-    }
     for o in &p.observables {
         let m = weighted_mean(&o.values(xs, model)?, log_w)
             .map_err(|e| format!("observables.{}: {e}", o.name))?;

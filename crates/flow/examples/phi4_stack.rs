@@ -37,10 +37,13 @@ fn main() {
     let p = TrainParams {
         w_ml: 0.0,
         w_kl: 1.0,
-        kl_batch_size: 256,
         steps_per_epoch: steps,
         max_epochs: 1,
         learning_rate: lr,
+        learning_rate_final: std::env::var("LR_FINAL").ok().map(|v| v.parse().unwrap()),
+        kl_batch_size: std::env::var("BATCH")
+            .ok()
+            .map_or(256, |v| v.parse().unwrap()),
         threads: 2,
         held_out_fraction: 0.0,
         ..Default::default()

@@ -44,6 +44,9 @@ pub struct TrainParams {
     pub energy_cutoff: f64,
     /// Adam step size.
     pub learning_rate: f64,
+    /// When set, the step size falls from `learning_rate` to this value along a half
+    /// cosine over the planned steps (max_epochs × steps per epoch); unset: constant.
+    pub learning_rate_final: Option<f64>,
     /// Adam's first-moment decay.
     pub adam_beta1: f64,
     /// Adam's second-moment decay.
@@ -78,6 +81,7 @@ impl Default for TrainParams {
             temperature_factors: vec![1.0],
             energy_cutoff: 1e3,
             learning_rate: 1e-3,
+            learning_rate_final: None,
             adam_beta1: 0.9,
             adam_beta2: 0.999,
             adam_eps: 1e-8,
@@ -94,6 +98,17 @@ impl Default for TrainParams {
 }
 
 impl TrainParams {
+    /// The step size at optimiser step `step` of `planned` (see `learning_rate_final`).
+    pub fn learning_rate_at(&self, step: usize, planned: usize) -> f64 {
+        match self.learning_rate_final {
+            None => self.learning_rate,
+            Some(f) => {
+                let t = step as f64 / planned.max(1) as f64;
+                f + 0.5 * (self.learning_rate - f) * (1.0 + (std::f64::consts::PI * t).cos())
+            }
+        }
+    }
+
     /// Checks ranges, naming the offending field.
     pub fn validate(&self) -> Result<(), FlowError> {
         let bad = |m: String| Err(FlowError::Params(m));
@@ -123,6 +138,13 @@ impl TrainParams {
                 "learning_rate must be > 0, got {}",
                 self.learning_rate
             ));
+        }
+        if let Some(f) = self.learning_rate_final {
+            if !(f.is_finite() && f > 0.0 && f <= self.learning_rate) {
+                return bad(format!(
+                    "learning_rate_final must be > 0 and at most learning_rate, got {f}"
+                ));
+            }
         }
         if !(0.0..1.0).contains(&self.adam_beta1)
             || !(0.0..1.0).contains(&self.adam_beta2)
@@ -535,9 +557,12 @@ pub fn train<T: Real>(
     let mut wait = 0;
     let mut cursor = train_idx.len();
     let mut held_lq = vec![0.0; n_held];
+    let mut p_step = params.clone();
+    let planned = params.max_epochs * steps_per_epoch;
     for epoch in 0..params.max_epochs {
         let (mut nll_sum, mut kl_sum, mut counted) = (0.0, 0.0, 0usize);
-        for _ in 0..steps_per_epoch {
+        for s in 0..steps_per_epoch {
+            p_step.learning_rate = params.learning_rate_at(epoch * steps_per_epoch + s, planned);
             let mut n_ml = 0;
             if use_ml {
                 while n_ml < params.batch_size.min(train_idx.len()) {
@@ -558,7 +583,7 @@ pub fn train<T: Real>(
             }
             let st = tr.step(
                 flow,
-                params,
+                &p_step,
                 n_ml,
                 if use_kl { energy } else { None },
                 &mut rng,

@@ -580,3 +580,42 @@ fn metadynamics_with_an_interpolated_bias_also_reweights_to_quadrature() {
         "{p} ± {err}"
     );
 }
+
+/// HMC on the free lattice field (λ = 0), whose ⟨φ²⟩ is exact:
+/// (1/2V) Σ_p 1/(m² + Σ_μ 4 sin²(p_μ/2)) = 0.1317460317 for L = 4, m² = 1
+/// (REFERENCES.md, status R). The error bar is from batch means of 200 trajectories.
+#[test]
+fn hmc_samples_the_free_field_exactly() {
+    use tarn_physics::explore::{hmc, HmcParams};
+    use tarn_physics::models::Phi4;
+    let model = Phi4::new(4, 1.0, 0.0).unwrap();
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(3);
+    let params = HmcParams {
+        n_trajectories: 40_000,
+        n_leapfrog: 5,
+        step_size: 0.3,
+    };
+    let run = hmc(&model, &[0.0; 16], 1.0, &params, &mut rng).unwrap();
+    assert!(run.acceptance > 0.5, "acceptance {}", run.acceptance);
+    let phi2: Vec<f64> = run
+        .states
+        .chunks(16)
+        .skip(1000)
+        .map(|x| x.iter().map(|v| v * v).sum::<f64>() / 16.0)
+        .collect();
+    let batch = 200;
+    let means: Vec<f64> = phi2
+        .chunks_exact(batch)
+        .map(|c| c.iter().sum::<f64>() / batch as f64)
+        .collect();
+    let nb = means.len() as f64;
+    let mean = means.iter().sum::<f64>() / nb;
+    let var = means.iter().map(|m| (m - mean).powi(2)).sum::<f64>() / (nb - 1.0);
+    let err = (var / nb).sqrt();
+    let exact = 0.1317460317;
+    assert!(
+        (mean - exact).abs() < 4.0 * err,
+        "{mean} ± {err} vs {exact}"
+    );
+    assert!(err < 0.002, "error {err}");
+}

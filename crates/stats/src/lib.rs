@@ -5,6 +5,7 @@
 //! Owns: statistics over arrays of numbers. Must not touch: the store, the engine,
 //! files, processes. All randomness comes from a generator passed in by the caller.
 
+pub mod autocorr;
 pub mod bootstrap;
 pub mod error;
 mod linalg;
@@ -16,6 +17,7 @@ pub mod profile;
 pub mod states;
 pub mod stop;
 
+pub use autocorr::{integrated_autocorrelation, Autocorrelation};
 pub use bootstrap::{
     default_block_length, standard_normal_quantile, BootstrapOptions, Interval, IntervalMethod,
 };

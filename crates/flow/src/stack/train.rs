@@ -300,10 +300,11 @@ pub fn train<T: Real>(
     let mut best: Option<(f64, Vec<T>)> = None;
     let mut since_best = 0;
     let mut cursor = train_idx.len();
+    let planned = p.max_epochs * steps;
     pool.install(|| -> Result<(), FlowError> {
         for epoch in 0..p.max_epochs {
             let (mut nll_sum, mut kl_sum) = (0.0, 0.0);
-            for _ in 0..steps {
+            for step in 0..steps {
                 let mut have = false;
                 if use_ml {
                     let mut idx = Vec::with_capacity(p.batch_size);
@@ -335,7 +336,8 @@ pub fn train<T: Real>(
                         have = true;
                     }
                 }
-                if !adam_step(&mut flow.params, p, p.learning_rate, &mut s) {
+                let lr = p.learning_rate_at(epoch * steps + step, planned);
+                if !adam_step(&mut flow.params, p, lr, &mut s) {
                     report.skipped_steps += 1;
                 }
                 report.steps += 1;

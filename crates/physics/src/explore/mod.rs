@@ -10,10 +10,12 @@
 //!
 //! [`ChaCha8Rng`]: rand_chacha::ChaCha8Rng
 
+pub mod hmc;
 pub mod langevin;
 pub mod metad;
 pub mod metropolis;
 
+pub use hmc::{hmc, HmcParams, HmcRun};
 pub use langevin::{langevin_baoab, LangevinParams, LangevinRun};
 pub use metad::{metadynamics, Bias, GridAxis, InterpolatedBias, MetadParams, MetadRun};
 pub use metropolis::{metropolis, MetropolisParams, MetropolisRun};
