@@ -150,7 +150,7 @@ pub fn retrain(task: &Task) -> Result<Output, String> {
     let data = task.input("train")?;
     let previous = current_model(task)?;
     let energy = (tp.w_kl > 0.0).then_some(model.as_ref());
-    let (report, bytes, warm) = if is_stack(&p.flow) {
+    let (report, trained, warm) = if is_stack(&p.flow) {
         let spec = stack_spec(&system, dim, &p.flow)?;
         let (mut flow, warm) = match previous {
             Some(AnyFlow::Stack(f)) if f.spec() == &spec => (f, true),
@@ -161,11 +161,7 @@ pub fn retrain(task: &Task) -> Result<Output, String> {
         };
         let report = train_stack(&mut flow, &data.data, None, energy, &tp, task.file.seed)
             .map_err(|e| format!("training: {e}"))?;
-        (
-            report,
-            flow.to_safetensors().map_err(|e| e.to_string())?,
-            warm,
-        )
+        (report, AnyFlow::Stack(flow), warm)
     } else {
         let spec = flow_spec(&system, dim, &p.flow)?;
         let (mut flow, warm) = match previous {
@@ -182,17 +178,16 @@ pub fn retrain(task: &Task) -> Result<Output, String> {
         };
         let report = train(&mut flow, &data.data, energy, &tp, task.file.seed)
             .map_err(|e| format!("training: {e}"))?;
-        (
-            report,
-            flow.to_safetensors().map_err(|e| e.to_string())?,
-            warm,
-        )
+        (report, AnyFlow::RealNvp(flow), warm)
     };
     let mut out = Output {
         energy_evals: report.energy_evaluations,
-        model: Some(bytes),
+        model: Some(trained.to_safetensors().map_err(|e| e.to_string())?),
         ..Default::default()
     };
+    if tp.w_kl > 0.0 {
+        steering_ess(task, &trained, model.as_ref(), &tp, &mut out)?;
+    }
     let last = |v: &[f64]| v.last().copied();
     out.metrics
         .insert("warm_start".into(), Some(if warm { 1.0 } else { 0.0 }));
@@ -210,6 +205,39 @@ pub fn retrain(task: &Task) -> Result<Output, String> {
         Some(report.nonfinite_energies as f64),
     );
     Ok(out)
+}
+
+/// Draws per temperature factor for [`steering_ess`].
+const STEERING_DRAWS: usize = 1000;
+
+/// The Kish ESS fraction of generation at every temperature factor the flow was trained
+/// for (metrics `ess_fraction_at_tau_T`): latent scaling by τ is exact only for
+/// volume-preserving flows, so these figures say how far temperature steering can be
+/// trusted. The draws are charged to the task.
+fn steering_ess(
+    task: &Task,
+    flow: &AnyFlow,
+    model: &dyn crate::physics::EnergyModel,
+    tp: &TrainParams,
+    out: &mut Output,
+) -> Result<(), String> {
+    for (i, &tau) in tp.temperature_factors.iter().enumerate() {
+        let g = flow
+            .generate(
+                model,
+                STEERING_DRAWS,
+                task.file.kt,
+                tau,
+                task.file.threads as usize,
+                task.file.seed ^ (0xA5A5 + i as u64),
+            )
+            .map_err(|e| format!("generation at temperature factor {tau}: {e}"))?;
+        out.energy_evals += g.energy_evaluations;
+        let frac = crate::stats::ess_fraction(&g.log_weight).ok();
+        out.metrics
+            .insert(format!("ess_fraction_at_tau_{tau}"), frac);
+    }
+    Ok(())
 }
 
 /// The `latent-metropolis` kind: Metropolis steps in the flow's latent space, exact for
