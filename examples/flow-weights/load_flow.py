@@ -1,6 +1,10 @@
 #!/usr/bin/env python3
 """Load a tarn flow weight file with numpy alone and evaluate log q(x).
 
+Both flow families are read: RealNVP files (metadata "format" = "tarn-flow", this
+module's TarnFlow) and layer-stack files ("format" = "tarn-flow-stack", StackFlow of
+load_stack.py next to this file); `load(path)` picks the reader by the "format" key.
+
 A tarn flow file is a safetensors file: 8 bytes (little-endian u64, the header length),
 a JSON header (tensor name -> dtype, shape, data_offsets; plus "__metadata__"), then the
 raw little-endian tensor data. The metadata key "architecture" holds the flow's
@@ -33,6 +37,26 @@ def read_safetensors(path):
         arr = np.frombuffer(buf[base + start:base + end], dtype=DTYPES[info["dtype"]])
         tensors[name] = arr.reshape(info["shape"])
     return meta, tensors
+
+
+def read_format(path):
+    """The "format" metadata value of a safetensors file (reads the header only)."""
+    with open(path, "rb") as f:
+        (n,) = struct.unpack("<Q", f.read(8))
+        header = json.loads(f.read(n))
+    return header.get("__metadata__", {}).get("format")
+
+
+def load(path):
+    """The flow in `path`, read by the reader its "format" names; both have log_prob(x, tau)."""
+    fmt = read_format(path)
+    if fmt == "tarn-flow":
+        return TarnFlow(path)
+    if fmt == "tarn-flow-stack":
+        from load_stack import StackFlow
+
+        return StackFlow(path)
+    raise ValueError(f"unknown format {fmt!r} (this reader knows tarn-flow and tarn-flow-stack)")
 
 
 def helmert(n):
@@ -110,7 +134,7 @@ class TarnFlow:
 def main():
     if len(sys.argv) < 3:
         sys.exit(__doc__)
-    flow = TarnFlow(sys.argv[1])
+    flow = load(sys.argv[1])
     pts = np.load(sys.argv[2]) if sys.argv[2].endswith(".npy") else np.loadtxt(sys.argv[2], delimiter=",", ndmin=2)
     tau = float(sys.argv[3]) if len(sys.argv) > 3 else 1.0
     for v in flow.log_prob(pts, tau):

@@ -1,10 +1,13 @@
-//! The safetensors weight file: exact round trips, strict refusal of malformed files
-//! (never a panic), and an independent numpy re-implementation (examples_py/load_flow.py)
-//! reproducing log q from the file alone.
+//! The safetensors weight files: exact round trips, strict refusal of malformed files
+//! (never a panic), and an independent numpy re-implementation
+//! (examples/flow-weights/load_flow.py, which reads layer-stack files with load_stack.py)
+//! reproducing log q from the file alone, for the RealNVP flow and for layer stacks of
+//! every layer kind and transform.
 
 mod common;
 use common::*;
 use proptest::prelude::*;
+use tarn_flow::stack::{LayerKind, LayerSpec, StackFlow, StackSpec, StackTape, TransformKind};
 use tarn_flow::{Flow, FlowError, FlowSpec, FrameSpec, Threading, Workspace};
 
 fn sample_flow() -> Flow<f32> {
@@ -171,21 +174,72 @@ proptest! {
     }
 }
 
-#[test]
-fn numpy_loader_reproduces_log_q() {
-    let have_numpy = std::process::Command::new("python3")
+/// Whether `python3` with numpy can be run (the numpy checks are skipped otherwise).
+fn have_numpy() -> bool {
+    std::process::Command::new("python3")
         .args(["-c", "import numpy"])
         .status()
         .map(|s| s.success())
-        .unwrap_or(false);
-    if !have_numpy {
+        .unwrap_or(false)
+}
+
+/// A fresh temporary directory for one test's files.
+fn temp_dir(tag: &str) -> std::path::PathBuf {
+    let dir = std::env::temp_dir().join(format!("tarn-flow-py-{tag}-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    dir
+}
+
+/// Writes the rows of `x` (`dim` columns) as CSV with round-trip precision.
+fn write_points(path: &std::path::Path, x: &[f64], dim: usize) {
+    let csv: String = x
+        .chunks(dim)
+        .map(|r| {
+            r.iter()
+                .map(|v| format!("{v:.17e}"))
+                .collect::<Vec<_>>()
+                .join(",")
+                + "\n"
+        })
+        .collect();
+    std::fs::write(path, csv).unwrap();
+}
+
+/// Runs examples/flow-weights/load_flow.py on a weight file and a points file and
+/// returns the log q it prints, one per row.
+fn python_log_q(flow: &std::path::Path, points: &std::path::Path, tau: f64) -> Vec<f64> {
+    let script = concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/../../examples/flow-weights/load_flow.py"
+    );
+    let out = std::process::Command::new("python3")
+        .arg(script)
+        .arg(flow)
+        .arg(points)
+        .arg(format!("{tau:.17e}"))
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    String::from_utf8(out.stdout)
+        .unwrap()
+        .lines()
+        .map(|l| l.parse().unwrap())
+        .collect()
+}
+
+#[test]
+fn numpy_loader_reproduces_log_q() {
+    if !have_numpy() {
         eprintln!(
             "SKIPPED: python3 with numpy is not available (pip install numpy to run this check)"
         );
         return;
     }
-    let dir = std::env::temp_dir().join(format!("tarn-flow-py-{}", std::process::id()));
-    std::fs::create_dir_all(&dir).unwrap();
+    let dir = temp_dir("realnvp");
     let mut cases: Vec<(Flow<f64>, usize)> = Vec::new();
     cases.push((sample_flow().to_precision(), 6));
     let mut com = FlowSpec::new(8);
@@ -201,38 +255,9 @@ fn numpy_loader_reproduces_log_q() {
         let path = dir.join(format!("flow{i}.safetensors"));
         std::fs::write(&path, flow.to_safetensors().unwrap()).unwrap();
         let x = normals(5, dx, 7 + i as u64);
-        let csv: String = x
-            .chunks(dx)
-            .map(|r| {
-                r.iter()
-                    .map(|v| format!("{v:.17e}"))
-                    .collect::<Vec<_>>()
-                    .join(",")
-                    + "\n"
-            })
-            .collect();
         let pts = dir.join(format!("points{i}.csv"));
-        std::fs::write(&pts, csv).unwrap();
-        let script = concat!(
-            env!("CARGO_MANIFEST_DIR"),
-            "/../../examples/flow-weights/load_flow.py"
-        );
-        let out = std::process::Command::new("python3")
-            .arg(script)
-            .arg(&path)
-            .arg(&pts)
-            .output()
-            .unwrap();
-        assert!(
-            out.status.success(),
-            "{}",
-            String::from_utf8_lossy(&out.stderr)
-        );
-        let py: Vec<f64> = String::from_utf8(out.stdout)
-            .unwrap()
-            .lines()
-            .map(|l| l.parse().unwrap())
-            .collect();
+        write_points(&pts, &x, dx);
+        let py = python_log_q(&path, &pts, 1.0);
         let rust = log_q(&flow, &x);
         assert_eq!(py.len(), rust.len());
         for (a, b) in py.iter().zip(&rust) {
@@ -245,6 +270,174 @@ fn numpy_loader_reproduces_log_q() {
             "case {i}: numpy loader agrees with Rust on {} points",
             rust.len()
         );
+    }
+    std::fs::remove_dir_all(&dir).ok();
+}
+
+/// One layer-stack spec entry with every key given.
+#[allow(clippy::too_many_arguments)]
+fn stack_layer(
+    kind: LayerKind,
+    transform: TransformKind,
+    repeat: usize,
+    hidden: Vec<usize>,
+    kernel: usize,
+    activation: tarn_flow::Activation,
+    clamp: f64,
+    bins: usize,
+    bound: f64,
+) -> LayerSpec {
+    LayerSpec {
+        kind,
+        transform,
+        repeat,
+        hidden: Some(hidden),
+        kernel,
+        activation,
+        clamp,
+        bins,
+        bound,
+    }
+}
+
+/// A stack flow with every parameter drawn uniformly from ±`scale` (a new flow's output
+/// layers are zero, i.e. the identity, which would test nothing).
+fn random_stack(spec: StackSpec, seed: u64, scale: f64) -> StackFlow<f64> {
+    use rand::{Rng, SeedableRng};
+    let mut flow = StackFlow::<f64>::new(spec, seed).unwrap();
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed ^ 0x5eed);
+    for p in flow.params_mut() {
+        *p = rng.gen_range(-scale..scale);
+    }
+    flow
+}
+
+/// The stack flows of the numpy check: each layer kind with each transform, alone, and
+/// all four in one stack on a lattice (dense couplings on lattice coordinates too).
+fn stack_cases() -> Vec<(&'static str, StackFlow<f64>)> {
+    use tarn_flow::Activation::{Relu, Silu, Tanh};
+    use LayerKind::{Checkerboard, Coupling};
+    use TransformKind::{Affine, Spline};
+    let dense = |transform, d: usize, seed: u64| StackSpec {
+        data_dim: d,
+        lattice_side: 0,
+        layers: vec![stack_layer(
+            Coupling,
+            transform,
+            4,
+            vec![9, 6],
+            3,
+            Silu,
+            2.0,
+            5,
+            2.0,
+        )],
+        permutation_seed: seed,
+    };
+    let lattice = |layers, side: usize| StackSpec {
+        data_dim: side * side,
+        lattice_side: side,
+        layers,
+        permutation_seed: 3,
+    };
+    let mixed = vec![
+        stack_layer(Coupling, Spline, 1, vec![7], 3, Tanh, 3.0, 6, 2.5),
+        stack_layer(Checkerboard, Affine, 2, vec![4, 3], 3, Silu, 1.5, 8, 4.0),
+        stack_layer(Checkerboard, Spline, 2, vec![3], 5, Relu, 3.0, 4, 1.5),
+        stack_layer(Coupling, Affine, 2, vec![5, 5], 3, Silu, 2.5, 8, 4.0),
+    ];
+    vec![
+        (
+            "coupling + affine",
+            random_stack(dense(Affine, 7, 11), 1, 0.5),
+        ),
+        (
+            "coupling + spline",
+            random_stack(dense(Spline, 6, 12), 2, 0.6),
+        ),
+        (
+            "checkerboard + affine",
+            random_stack(
+                lattice(
+                    vec![stack_layer(
+                        Checkerboard,
+                        Affine,
+                        3,
+                        vec![4, 4],
+                        3,
+                        Tanh,
+                        2.0,
+                        8,
+                        4.0,
+                    )],
+                    4,
+                ),
+                3,
+                0.5,
+            ),
+        ),
+        (
+            "checkerboard + spline",
+            random_stack(
+                lattice(
+                    vec![stack_layer(
+                        Checkerboard,
+                        Spline,
+                        3,
+                        vec![5],
+                        3,
+                        Silu,
+                        2.0,
+                        6,
+                        1.8,
+                    )],
+                    6,
+                ),
+                4,
+                0.6,
+            ),
+        ),
+        ("mixed stack", random_stack(lattice(mixed, 4), 5, 0.5)),
+    ]
+}
+
+#[test]
+fn numpy_loader_reproduces_stack_log_q() {
+    if !have_numpy() {
+        eprintln!(
+            "SKIPPED: python3 with numpy is not available (pip install numpy to run this check)"
+        );
+        return;
+    }
+    let dir = temp_dir("stack");
+    for (i, (name, flow)) in stack_cases().into_iter().enumerate() {
+        let d = flow.dim();
+        let path = dir.join(format!("stack{i}.safetensors"));
+        std::fs::write(&path, flow.to_safetensors().unwrap()).unwrap();
+        // Spread 1.5 puts some coordinates outside the spline ranges (identity tails).
+        let x: Vec<f64> = normals(6, d, 20 + i as u64)
+            .iter()
+            .map(|v| 1.5 * v)
+            .collect();
+        let pts = dir.join(format!("stack_points{i}.csv"));
+        write_points(&pts, &x, d);
+        for tau in [1.0, 0.7] {
+            let py = python_log_q(&path, &pts, tau);
+            let rust = flow.log_prob(&x, tau, &mut StackTape::default());
+            assert_eq!(py.len(), rust.len(), "{name}");
+            let mut worst = 0.0f64;
+            for (a, b) in py.iter().zip(&rust) {
+                assert!(b.is_finite(), "{name}: rust log q {b}");
+                let rel = (a - b).abs() / b.abs().max(1.0);
+                assert!(rel < 1e-8, "{name}, tau {tau}: numpy {a} vs rust {b}");
+                worst = worst.max(rel);
+            }
+            eprintln!(
+                "{name} (D = {d}, {} layers, tau {tau}): numpy agrees with Rust on {} points, worst relative difference {worst:.1e}",
+                flow.spec().layers.iter().map(|l| l.repeat).sum::<usize>(),
+                rust.len()
+            );
+        }
     }
     std::fs::remove_dir_all(&dir).ok();
 }

@@ -1,21 +1,49 @@
-//! The layer stack's weight file: safetensors with `format` = "tarn-flow-stack",
-//! `format_version` = "1", `architecture` = the [`StackSpec`] as JSON, and per layer k:
+//! The layer stack's weight file: safetensors (8-byte little-endian header length, JSON
+//! header, raw little-endian tensor data) with the metadata keys `format` =
+//! "tarn-flow-stack", `format_version` = "1", `architecture` = the [`StackSpec`] as JSON
+//! (every key written; `hidden` is `null` for the kind's default) and `convention` = a
+//! one-line statement of the formulas below. Real tensors are F32 or F64 (the flow's
+//! precision), index tensors I64.
 //!
-//! - `layer.{k}.cond_index`, `layer.{k}.trans_index` (I64): the coordinates (lattice
-//!   sites, row-major) that condition and that are transformed;
-//! - `layer.{k}.net.{l}.weight` ([n_in · patch, n_out]) and `.bias` ([n_out]): linear
-//!   layer l of the conditioner. For a dense conditioner the input row is x[cond_index]
-//!   and patch = 1. For a convolution (checkerboard layers) every site's input is its
-//!   kernel×kernel periodic neighbourhood, row offsets −h..h outer, column offsets inner,
-//!   channels innermost, of a map whose first channel is x on the conditioning sites and
-//!   0 elsewhere. Hidden layers apply the activation; the last gives the element-wise
-//!   map's parameters per transformed coordinate (dense: [|B|, P] row-major; convolution:
-//!   P channels at each transformed site).
+//! Layers: the entries of `architecture.layers`, each expanded into `repeat`
+//! consecutive coupling layers, numbered k = 0, 1, ... across the whole stack from the
+//! latent side. Per layer k:
+//!
+//! - `layer.{k}.cond_index`, `layer.{k}.trans_index` (I64): the coordinates A (lattice
+//!   sites, row-major) that condition and B that are transformed, each sorted. They are
+//!   the only record of a `coupling` layer's split (drawn from a seeded permutation), so
+//!   readers take them from the file rather than recomputing them;
+//! - `layer.{k}.net.{l}.weight` ([n_in · patch, n_out], applied as h @ W + b) and
+//!   `.bias` ([n_out]) for l = 0..=len(hidden): linear layer l of the conditioner; every
+//!   layer but the last is followed by the entry's `activation` (silu x/(1+e^−x), tanh,
+//!   relu). P = the element-wise map's parameters per transformed coordinate.
+//!   - `coupling` (dense): patch = 1; the input row is x[A] (n_in = |A| for l = 0) and
+//!     the last layer has n_out = |B| · P, read as [|B|, P] row-major (θ of the b-th
+//!     entry of B is columns b·P..(b+1)·P).
+//!   - `checkerboard` (periodic convolution on the L×L lattice, L = `lattice_side`):
+//!     patch = kernel²; the input is a one-channel map (n_in = 1 for l = 0) equal to x on
+//!     the sites A and 0 on the others; every linear layer is applied at every site to
+//!     that site's kernel×kernel periodic neighbourhood of the previous map, flattened
+//!     with row offsets −h..h outer, column offsets −h..h inner and channels innermost
+//!     (h = kernel / 2); the last layer gives P channels at every site, of which those
+//!     at the sites of B are used.
+//!
+//! θ of one coordinate: `affine` (P = 2): (raw, t), s = clamp · tanh(raw / clamp),
+//! x = z e^s + t in the generative direction. `spline` (P = 3·bins − 1): bins raw
+//! widths, bins raw heights, bins − 1 raw interior knot slopes of the interval
+//! rational-quadratic spline on [−bound, bound] with identity tails, exactly as in
+//! [`crate::spline`] (minimum bin 1e-3 · 2·bound, minimum slope 1e-3, boundary slopes 1).
+//!
+//! Direction: layer k maps its input u to u' with u'[A] = u[A] and
+//! u'[b] = g(u[b]; θ_b(u[A])). Since u[A] passes unchanged, the inverse reads the same
+//! conditioner input from u'; log q(x) at temperature factor τ is log N(z; 0, τ I) +
+//! Σ_k Σ_b ln |d g⁻¹/d u'_b|, running the layers from the last to layer 0.
 //!
 //! Reading checks the format, version and architecture (naming the layer whose kind is
 //! unknown), bounds sizes by the file's length before allocating, and checks every
 //! tensor's presence, dtype, shape and finiteness, the index sets against the
-//! architecture, and that there are no extra tensors.
+//! architecture, and that there are no extra tensors. A numpy reader written from this
+//! description is `examples/flow-weights/load_stack.py`.
 
 use super::{LayerSpec, StackFlow, StackSpec};
 use crate::io::{read_index, read_real, real_bytes, write_safetensors};
@@ -30,7 +58,10 @@ pub const STACK_FORMAT_VERSION: &str = "1";
 
 const CONVENTION: &str = "generative direction z -> x, layer 0 first: per layer, \
 x[trans] = g(z[trans]; theta) with theta = conditioner(z[cond]); affine: g = z * exp(s) + t, \
-s = clamp * tanh(raw / clamp), (raw, t) = theta; latent z ~ N(0, tau I)";
+s = clamp * tanh(raw / clamp), (raw, t) = theta; spline: monotonic rational-quadratic on \
+[-bound, bound], identity outside, theta = bins raw widths, bins raw heights, bins - 1 raw \
+interior knot slopes (widths and heights 2 bound (1e-3 + (1 - 1e-3 bins) softmax), slopes \
+1e-3 + softplus(r + ln(e^0.999 - 1)), boundary slopes 1); latent z ~ N(0, tau I)";
 
 fn bad(m: impl Into<String>) -> FlowError {
     FlowError::Format(m.into())
