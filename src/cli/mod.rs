@@ -327,7 +327,7 @@ fn dispatch(cli: &Cli) -> Result<u8, Failure> {
             let meta = store.meta()?;
             let c = Campaign::parse(&current.path, &current.text, Path::new(&meta.base_dir))
                 .map_err(Failure::input)?;
-            let files = report::export::export(&store, c.system.dim, out)?;
+            let files = report::export::export(&store, &c, out)?;
             outln!(
                 "wrote {} files to {}: {}",
                 files.len(),

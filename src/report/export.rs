@@ -8,15 +8,31 @@ use std::io::Write;
 use std::path::Path;
 
 use crate::protocol::{npy, Array, Role};
+use crate::spec::Campaign;
 use crate::store::{keys, Store, TaskStatus};
 
-/// Writes every export file into `out` and returns their names.
-pub fn export(store: &Store, dim: usize, out: &Path) -> anyhow::Result<Vec<String>> {
+/// Writes every export file into `out` and returns their names. Each sample row carries
+/// the temperature factor its stage sampled at (`params.temperature_factor`, 1 when
+/// absent) and, when its explorer handed them back (a flow's `generate`, a biased
+/// explorer), its log importance weight to the campaign's kT (empty otherwise; also in
+/// `log_weights.npy` as NaN).
+pub fn export(store: &Store, campaign: &Campaign, out: &Path) -> anyhow::Result<Vec<String>> {
+    let dim = campaign.system.dim;
+    let stages = campaign.stages();
+    let tau_of = |idx: u16| {
+        stages
+            .get(idx as usize)
+            .and_then(|s| s.params.get("temperature_factor"))
+            .and_then(|v| v.as_f64())
+            .unwrap_or(1.0)
+    };
     std::fs::create_dir_all(out)?;
     let mut files = Vec::new();
     let mut samples = Vec::new();
     let mut energies = Vec::new();
-    let mut prov = String::from("round,stage,walker,sample_index,task,state\n");
+    let mut log_weights = Vec::new();
+    let mut prov =
+        String::from("round,stage,walker,sample_index,task,state,temperature_factor,log_weight\n");
     let mut n = 0usize;
     for round in store.rounds()? {
         let tasks = store.round_tasks(round.round)?;
@@ -43,15 +59,28 @@ pub fn export(store: &Store, dim: usize, out: &Path) -> anyhow::Result<Vec<Strin
             let e = store
                 .array(&key, "energies")?
                 .unwrap_or_else(|| Array::vector(vec![f64::NAN; x.rows()]));
+            let lw = store
+                .array(&key, "log_weights")?
+                .filter(|a| a.data.len() == x.rows());
+            let tau = tau_of(t.stage_index);
             for i in 0..x.rows() {
+                let w = lw.as_ref().map(|a| a.data[i]);
+                log_weights.push(w.unwrap_or(f64::NAN));
                 let state = labels
                     .as_ref()
                     .and_then(|l| l.data.get(i_round))
                     .map(|v| (*v as i64).to_string())
                     .unwrap_or_default();
                 prov.push_str(&format!(
-                    "{},{},{},{},{},{}\n",
-                    t.round, t.stage, t.walker, i, t.id, state
+                    "{},{},{},{},{},{},{},{}\n",
+                    t.round,
+                    t.stage,
+                    t.walker,
+                    i,
+                    t.id,
+                    state,
+                    tau,
+                    w.map(|v| v.to_string()).unwrap_or_default()
                 ));
                 i_round += 1;
             }
@@ -70,6 +99,12 @@ pub fn export(store: &Store, dim: usize, out: &Path) -> anyhow::Result<Vec<Strin
         out,
         "energies.npy",
         &npy::encode_f64(&Array::vector(energies)),
+        &mut files,
+    )?;
+    write(
+        out,
+        "log_weights.npy",
+        &npy::encode_f64(&Array::vector(log_weights)),
         &mut files,
     )?;
     write(out, "samples.csv", prov.as_bytes(), &mut files)?;
