@@ -175,15 +175,19 @@ impl<T: Real> StackFlow<T> {
                 bytes.len()
             )));
         }
-        let shell = StackFlow::<T>::new_zeroed(spec)
+        // Parameters take at least 4 bytes each: bound their count before allocating.
+        let layers = spec
+            .build()
             .map_err(|e| bad(format!("metadata `architecture`: {e}")))?;
-        if shell.params.len() as u128 * 4 > bytes.len() as u128 {
+        let n_params: u128 = layers.iter().map(|l| l.net.n_params_u128()).sum();
+        if n_params * 4 > bytes.len() as u128 {
             return Err(bad(format!(
-                "architecture needs {} parameters, more than a file of {} bytes can hold",
-                shell.params.len(),
+                "architecture needs {n_params} parameters, more than a file of {} bytes can hold",
                 bytes.len()
             )));
         }
+        let shell = StackFlow::<T>::new_zeroed(spec)
+            .map_err(|e| bad(format!("metadata `architecture`: {e}")))?;
         let mut flow = shell;
         let mut expected = 0usize;
         let d = flow.dim();

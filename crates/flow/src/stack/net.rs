@@ -43,6 +43,15 @@ impl NetShape {
         self.sizes.windows(2).map(|w| (w[0] * p, w[1])).collect()
     }
 
+    /// Number of parameters, without overflow for any sizes (for bounds checks).
+    pub fn n_params_u128(&self) -> u128 {
+        let p = self.patch() as u128;
+        self.sizes
+            .windows(2)
+            .map(|w| w[0] as u128 * p * w[1] as u128 + w[1] as u128)
+            .sum()
+    }
+
     /// Number of parameters.
     pub fn n_params(&self) -> usize {
         let p = self.patch();

@@ -379,3 +379,28 @@ fn density_integrates_to_one() {
         );
     }
 }
+
+#[test]
+fn an_architecture_too_large_for_its_file_is_refused_before_allocating() {
+    // Four layers of 4096-channel 5x5 convolutions on a 4x4 lattice would need about
+    // 1.7e9 parameters; the file is a few kilobytes.
+    let f = random_flow(lattice_spec(4, TransformKind::Affine), 1);
+    let bytes = f.to_safetensors().unwrap();
+    let n = u64::from_le_bytes(bytes[..8].try_into().unwrap()) as usize;
+    let header = String::from_utf8(bytes[8..8 + n].to_vec()).unwrap();
+    let huge = header
+        .replace("\\\"hidden\\\":[3,4]", "\\\"hidden\\\":[4096,4096]")
+        .replace("\\\"kernel\\\":3", "\\\"kernel\\\":5");
+    assert_ne!(huge, header, "the architecture text was found");
+    let mut hb = huge.into_bytes();
+    while !hb.len().is_multiple_of(8) {
+        hb.push(b' ');
+    }
+    let mut out = (hb.len() as u64).to_le_bytes().to_vec();
+    out.extend(hb);
+    out.extend(&bytes[8 + n..]);
+    let e = StackFlow::<f32>::from_safetensors(&out)
+        .unwrap_err()
+        .to_string();
+    assert!(e.contains("parameters, more than a file of"), "{e}");
+}
