@@ -117,31 +117,8 @@ impl<T: Real> Flow<T> {
     /// Reads a flow from a safetensors byte string written by `to_safetensors` (in either
     /// precision), checking everything against the recorded architecture.
     pub fn from_safetensors(bytes: &[u8]) -> Result<Self, FlowError> {
-        let st = SafeTensors::deserialize(bytes)
-            .map_err(|e| bad(format!("not a safetensors file: {e}")))?;
-        let (_, header) = SafeTensors::read_metadata(bytes)
-            .map_err(|e| bad(format!("unreadable header: {e}")))?;
-        let meta = header
-            .metadata()
-            .as_ref()
-            .ok_or_else(|| bad("no __metadata__ in the header"))?;
-        let get = |k: &str| {
-            meta.get(k)
-                .ok_or_else(|| bad(format!("metadata key `{k}` is missing")))
-        };
-        if get("format")? != FORMAT_NAME {
-            return Err(bad(format!(
-                "metadata `format` is `{}`, not `{FORMAT_NAME}`",
-                get("format")?
-            )));
-        }
-        if get("format_version")? != FORMAT_VERSION {
-            return Err(bad(format!(
-                "format_version `{}` is not supported (this build reads `{FORMAT_VERSION}`)",
-                get("format_version")?
-            )));
-        }
-        let spec: FlowSpec = serde_json::from_str(get("architecture")?)
+        let (st, arch) = open_weight_file(bytes, FORMAT_NAME, FORMAT_VERSION)?;
+        let spec: FlowSpec = serde_json::from_str(&arch)
             .map_err(|e| bad(format!("metadata `architecture`: {e}")))?;
         // `validate` multiplies the frame's sizes unchecked; refuse a product that
         // overflows before it does.
@@ -229,6 +206,40 @@ impl<T: Real> Flow<T> {
             params,
         })
     }
+}
+
+/// Parses a weight file's tensors and checks its `format` and `format_version` metadata;
+/// returns the tensors and the `architecture` text.
+pub(crate) fn open_weight_file<'a>(
+    bytes: &'a [u8],
+    format: &str,
+    version: &str,
+) -> Result<(SafeTensors<'a>, String), FlowError> {
+    let st =
+        SafeTensors::deserialize(bytes).map_err(|e| bad(format!("not a safetensors file: {e}")))?;
+    let (_, header) =
+        SafeTensors::read_metadata(bytes).map_err(|e| bad(format!("unreadable header: {e}")))?;
+    let meta = header
+        .metadata()
+        .as_ref()
+        .ok_or_else(|| bad("no __metadata__ in the header"))?;
+    let get = |k: &str| {
+        meta.get(k)
+            .ok_or_else(|| bad(format!("metadata key `{k}` is missing")))
+    };
+    if get("format")? != format {
+        return Err(bad(format!(
+            "metadata `format` is `{}`, not `{format}`",
+            get("format")?
+        )));
+    }
+    if get("format_version")? != version {
+        return Err(bad(format!(
+            "format_version `{}` is not supported (this build reads `{version}`)",
+            get("format_version")?
+        )));
+    }
+    Ok((st, get("architecture")?.clone()))
 }
 
 /// Lays out a safetensors byte string deterministically: tensors sorted by name, data

@@ -46,10 +46,10 @@
 //! description is `examples/flow-weights/load_stack.py`.
 
 use super::{LayerSpec, StackFlow, StackSpec};
-use crate::io::{read_index, read_real, real_bytes, write_safetensors};
+use crate::io::{open_weight_file, read_index, read_real, real_bytes, write_safetensors};
 use crate::real::Real;
 use crate::FlowError;
-use safetensors::tensor::{Dtype, SafeTensors};
+use safetensors::tensor::Dtype;
 
 /// The value of the `format` metadata key of a layer-stack weight file.
 pub const STACK_FORMAT_NAME: &str = "tarn-flow-stack";
@@ -141,31 +141,8 @@ impl<T: Real> StackFlow<T> {
 
     /// Reads a flow written by [`StackFlow::to_safetensors`] (either precision).
     pub fn from_safetensors(bytes: &[u8]) -> Result<Self, FlowError> {
-        let st = SafeTensors::deserialize(bytes)
-            .map_err(|e| bad(format!("not a safetensors file: {e}")))?;
-        let (_, header) = SafeTensors::read_metadata(bytes)
-            .map_err(|e| bad(format!("unreadable header: {e}")))?;
-        let meta = header
-            .metadata()
-            .as_ref()
-            .ok_or_else(|| bad("no __metadata__ in the header"))?;
-        let get = |k: &str| {
-            meta.get(k)
-                .ok_or_else(|| bad(format!("metadata key `{k}` is missing")))
-        };
-        if get("format")? != STACK_FORMAT_NAME {
-            return Err(bad(format!(
-                "metadata `format` is `{}`, not `{STACK_FORMAT_NAME}`",
-                get("format")?
-            )));
-        }
-        if get("format_version")? != STACK_FORMAT_VERSION {
-            return Err(bad(format!(
-                "format_version `{}` is not supported (this build reads `{STACK_FORMAT_VERSION}`)",
-                get("format_version")?
-            )));
-        }
-        let spec = parse_architecture(get("architecture")?)?;
+        let (st, arch) = open_weight_file(bytes, STACK_FORMAT_NAME, STACK_FORMAT_VERSION)?;
+        let spec = parse_architecture(&arch)?;
         // Index tensors alone take 8 bytes per coordinate per layer.
         let layer_count: u128 = spec.layers.iter().map(|l| l.repeat as u128).sum();
         if (spec.data_dim as u128) * 8 * layer_count.max(1) > bytes.len() as u128 {

@@ -293,6 +293,20 @@ fn new_flow_is_the_identity_and_bad_specs_are_refused() {
     assert!(e.contains("kernel must be odd"), "{e}");
 }
 
+/// A weight file with its JSON header rewritten by `edit`, tensors kept.
+fn edit_header(bytes: &[u8], edit: impl Fn(&str) -> String) -> Vec<u8> {
+    let n = u64::from_le_bytes(bytes[..8].try_into().unwrap()) as usize;
+    let header = String::from_utf8(bytes[8..8 + n].to_vec()).unwrap();
+    let mut hb = edit(&header).into_bytes();
+    while !hb.len().is_multiple_of(8) {
+        hb.push(b' ');
+    }
+    let mut out = (hb.len() as u64).to_le_bytes().to_vec();
+    out.extend(hb);
+    out.extend(&bytes[8 + n..]);
+    out
+}
+
 #[test]
 fn weight_file_round_trips_and_refuses_unknown_layers_and_damage() {
     for spec in specs() {
@@ -324,16 +338,7 @@ fn weight_file_round_trips_and_refuses_unknown_layers_and_damage() {
     // A layer kind this build does not know: refused, naming the layer.
     let f = random_flow(lattice_spec(4, TransformKind::Affine), 1);
     let bytes = f.to_safetensors().unwrap();
-    let n = u64::from_le_bytes(bytes[..8].try_into().unwrap()) as usize;
-    let header = String::from_utf8(bytes[8..8 + n].to_vec()).unwrap();
-    let renamed = header.replace("checkerboard", "hexagonal");
-    let mut hb = renamed.into_bytes();
-    while !hb.len().is_multiple_of(8) {
-        hb.push(b' ');
-    }
-    let mut out = (hb.len() as u64).to_le_bytes().to_vec();
-    out.extend(hb);
-    out.extend(&bytes[8 + n..]);
+    let out = edit_header(&bytes, |h| h.replace("checkerboard", "hexagonal"));
     let e = StackFlow::<f32>::from_safetensors(&out)
         .unwrap_err()
         .to_string();
@@ -386,19 +391,13 @@ fn an_architecture_too_large_for_its_file_is_refused_before_allocating() {
     // 1.7e9 parameters; the file is a few kilobytes.
     let f = random_flow(lattice_spec(4, TransformKind::Affine), 1);
     let bytes = f.to_safetensors().unwrap();
-    let n = u64::from_le_bytes(bytes[..8].try_into().unwrap()) as usize;
-    let header = String::from_utf8(bytes[8..8 + n].to_vec()).unwrap();
-    let huge = header
-        .replace("\\\"hidden\\\":[3,4]", "\\\"hidden\\\":[4096,4096]")
-        .replace("\\\"kernel\\\":3", "\\\"kernel\\\":5");
-    assert_ne!(huge, header, "the architecture text was found");
-    let mut hb = huge.into_bytes();
-    while !hb.len().is_multiple_of(8) {
-        hb.push(b' ');
-    }
-    let mut out = (hb.len() as u64).to_le_bytes().to_vec();
-    out.extend(hb);
-    out.extend(&bytes[8 + n..]);
+    let out = edit_header(&bytes, |h| {
+        let huge = h
+            .replace("\\\"hidden\\\":[3,4]", "\\\"hidden\\\":[4096,4096]")
+            .replace("\\\"kernel\\\":3", "\\\"kernel\\\":5");
+        assert_ne!(huge, h, "the architecture text was found");
+        huge
+    });
     let e = StackFlow::<f32>::from_safetensors(&out)
         .unwrap_err()
         .to_string();
