@@ -678,14 +678,18 @@ fn backticked(m: &str) -> Vec<&str> {
 /// field, the invalid parameter, or the leading `key:` of a type error, when `params`
 /// has that key.
 fn params_key_of<'a>(message: &'a str, params: &serde_json::Value) -> Option<&'a str> {
-    let key = backticked_after(message, "unknown field `")
-        .or_else(|| backticked_after(message, "invalid parameter `"))
-        .or_else(|| {
-            let head = message.split(": ").next()?;
-            let first = head.split(['.', '[']).next()?;
-            Some(first)
-        })?;
-    params.get(key).is_some().then_some(key)
+    let head = || {
+        let head = message.split(": ").next()?;
+        head.split(['.', '[']).next()
+    };
+    [
+        backticked_after(message, "unknown field `"),
+        backticked_after(message, "invalid parameter `"),
+        head(),
+    ]
+    .into_iter()
+    .flatten()
+    .find(|key| params.get(*key).is_some())
 }
 
 /// serde names an unknown empty key (`"" = 1`) as "unknown field ``", which reads as a
@@ -1066,8 +1070,16 @@ fn check_builtin_params(
             return ctx.err(&table, message);
         };
         let key_path = format!("{table}.{}", toml_key(key));
-        // An unknown key is pointed at by its name, a bad value by the value.
-        let span = if e.starts_with("unknown field") {
+        // A message that starts with a deeper path (`flow.layers[1]: ...`) points at
+        // that entry; an unknown key is pointed at by its name, a bad value by the value.
+        let deeper = e
+            .split(": ")
+            .next()
+            .filter(|head| head.len() > key.len() && head.starts_with(key))
+            .and_then(|head| span_of(ctx.doc, &format!("{table}.{head}")));
+        let span = if deeper.is_some() {
+            deeper
+        } else if e.starts_with("unknown field") {
             key_span(ctx.doc, &table, key)
         } else {
             span_of(ctx.doc, &key_path)

@@ -66,14 +66,25 @@ fn stack_spec(
             ));
         }
     }
+    // Each layer on its own first, so that an error names the entry and key
+    // (`flow.layers[1]: unknown field ...`).
+    if let Some(layers) = table.get("layers").and_then(|v| v.as_array()) {
+        for (i, l) in layers.iter().enumerate() {
+            serde_json::from_value::<crate::flow::stack::LayerSpec>(l.clone())
+                .map_err(|e| format!("flow.layers[{i}]: {e}"))?;
+        }
+    }
     let mut t = table.clone();
     t.insert("data_dim".into(), dim.into());
     if let SystemSpec::Phi4 { size, .. } = system {
         t.insert("lattice_side".into(), (*size).into());
     }
-    let spec: StackSpec = serde_json::from_value(serde_json::Value::Object(t))
-        .map_err(|e| format!("params.flow: {e}"))?;
-    spec.validate().map_err(|e| format!("params.flow: {e}"))?;
+    let spec: StackSpec =
+        serde_json::from_value(serde_json::Value::Object(t)).map_err(|e| format!("flow: {e}"))?;
+    spec.validate().map_err(|e| match e {
+        crate::flow::FlowError::Spec(m) if m.starts_with("layers[") => format!("flow.{m}"),
+        other => format!("flow: {other}"),
+    })?;
     Ok(spec)
 }
 
