@@ -518,18 +518,7 @@ pub fn forward_rows<T: Real>(
     x: &mut [T],
     log_det: &mut [T],
 ) -> Result<(), FlowError> {
-    let n = x.len();
-    check_rows(shape, theta, n)?;
-    check_len("spline log-derivatives", log_det, n)?;
-    let np = shape.n_params();
-    for ((v, ld), th) in x
-        .iter_mut()
-        .zip(log_det.iter_mut())
-        .zip(theta.chunks_exact(np))
-    {
-        (*v, *ld) = forward(shape, th, *v);
-    }
-    Ok(())
+    rows_map(shape, theta, x, log_det, forward::<T>)
 }
 
 /// Batched [`inverse`]: `y` (n values) is replaced by x in place, `log_det[i]` is set
@@ -540,16 +529,28 @@ pub fn inverse_rows<T: Real>(
     y: &mut [T],
     log_det: &mut [T],
 ) -> Result<(), FlowError> {
-    let n = y.len();
+    rows_map(shape, theta, y, log_det, inverse::<T>)
+}
+
+/// Shared body of the batched maps: each value through `element` with its own row of
+/// `theta`, in place, its log-derivative into `log_det`.
+fn rows_map<T: Real>(
+    shape: &SplineShape,
+    theta: &[T],
+    v: &mut [T],
+    log_det: &mut [T],
+    element: fn(&SplineShape, &[T], T) -> (T, T),
+) -> Result<(), FlowError> {
+    let n = v.len();
     check_rows(shape, theta, n)?;
     check_len("spline log-derivatives", log_det, n)?;
     let np = shape.n_params();
-    for ((v, ld), th) in y
+    for ((v, ld), th) in v
         .iter_mut()
         .zip(log_det.iter_mut())
         .zip(theta.chunks_exact(np))
     {
-        (*v, *ld) = inverse(shape, th, *v);
+        (*v, *ld) = element(shape, th, *v);
     }
     Ok(())
 }
